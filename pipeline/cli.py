@@ -1,0 +1,151 @@
+"""Command line: ``lodeline run``, ``lodeline status`` and ``lodeline stages``.
+
+Exit codes: 0 success; 2 a problem with the input or configuration that the
+user must correct (one line on standard error, nothing written); 1 an internal
+error (one line on standard error, the traceback in the run log); 130
+interrupted.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import traceback
+from pathlib import Path
+
+from . import __version__
+from .config import ConfigError, load_config
+from .model import DataError
+from .params import ParameterError, describe
+from .store import RunFolderError
+
+__all__ = ["main"]
+
+USER_ERRORS = (ConfigError, ParameterError, DataError, RunFolderError, FileNotFoundError)
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="lodeline",
+        description="Process a magnetometer survey from raw readings to a ranked target table.",
+    )
+    parser.add_argument("--version", action="version", version=f"lodeline {__version__}")
+    sub = parser.add_subparsers(dest="command", required=True)
+
+    def common(p):
+        p.add_argument("survey", help="the survey TOML file")
+        p.add_argument(
+            "--set",
+            dest="overrides",
+            action="append",
+            default=[],
+            metavar="TABLE.KEY=VALUE",
+            help="override one configuration value for this run, e.g. --set spikes.threshold_nT=2",
+        )
+
+    p_run = sub.add_parser("run", help="run every stage whose inputs, parameters or code changed")
+    common(p_run)
+    p_run.add_argument("--redo", action="append", default=[], metavar="STAGE", help="run this stage again even if fresh (its downstream stages follow)")
+    p_run.add_argument("--until", metavar="STAGE", help="stop after this stage")
+    p_run.add_argument("--scheduler", help="'threads', 'synchronous' or a dask scheduler address (tcp://host:port)")
+    p_run.add_argument("--workers", type=int, help="threads for the threaded scheduler (0 = one per core)")
+    p_run.add_argument("--quiet", action="store_true", help="no progress bars; only warnings and errors on the terminal")
+
+    p_status = sub.add_parser("status", help="list each stage as fresh or stale, and why")
+    common(p_status)
+
+    p_stages = sub.add_parser("stages", help="list the stages and their parameters")
+    p_stages.add_argument("stage", nargs="?", help="show only this stage's parameters")
+    return parser
+
+
+def _cmd_run(args) -> int:
+    from .runner import discover_stages, run_survey
+
+    overrides = list(args.overrides)
+    if args.scheduler:
+        overrides.append(f'run.scheduler="{args.scheduler}"')
+    if args.workers is not None:
+        overrides.append(f"run.workers={args.workers}")
+    stages = discover_stages()
+    config = load_config(args.survey, overrides, [s.name for s in stages])
+    report = run_survey(config, redo=tuple(args.redo), until=args.until, quiet=args.quiet, stages=stages)
+    if not args.quiet:
+        print(f"run folder: {report.folder}")
+        print(f"stages run: {', '.join(report.ran) or 'none'}; fresh: {', '.join(report.skipped) or 'none'}")
+    return 0
+
+
+def _cmd_status(args) -> int:
+    from .runner import discover_stages, stage_status
+
+    stages = discover_stages()
+    config = load_config(args.survey, args.overrides, [s.name for s in stages])
+    rows = stage_status(config, stages)
+    width = max(len(r["stage"]) for r in rows) if rows else 5
+    print(f"run folder: {config.run_folder}")
+    for r in rows:
+        line = f"{r['stage']:<{width}}  {r['state']:<5}"
+        if r["reason"]:
+            line += f"  ({r['reason']})"
+        print(line)
+    return 0
+
+
+def _cmd_stages(args) -> int:
+    from .runner import discover_stages
+
+    stages = discover_stages()
+    if args.stage and args.stage not in {s.name for s in stages}:
+        raise ConfigError(f"unknown stage {args.stage!r} (stages: {', '.join(s.name for s in stages)})")
+    for s in stages:
+        if args.stage and s.name != args.stage:
+            continue
+        after = f" (after {', '.join(s.after)})" if s.after else ""
+        print(f"[{s.name}]{after}: {s.summary}")
+        for row in describe(s.params):
+            print(f"  {row['key']} = {row['default']!r}  -- {row['doc']} Allowed: {row['allowed']}.")
+        for key, params in s.input_params.items():
+            print(f"  [inputs.{key}]")
+            for row in describe(params):
+                print(f"    {row['key']} = {row['default']!r}  -- {row['doc']} Allowed: {row['allowed']}.")
+    return 0
+
+
+def _record_traceback(args) -> Path | None:
+    """Append the current traceback to the run log when the run folder is known."""
+    try:
+        config = load_config(args.survey, [])
+    except Exception:  # noqa: BLE001 - best effort only
+        return None
+    folder = config.run_folder
+    if not folder.is_dir():
+        return None
+    path = folder / "run.log"
+    with open(path, "a", encoding="utf-8") as fh:
+        fh.write(traceback.format_exc())
+    return path
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``lodeline`` command."""
+    args = _parser().parse_args(argv)
+    handlers = {"run": _cmd_run, "status": _cmd_status, "stages": _cmd_stages}
+    try:
+        return handlers[args.command](args)
+    except USER_ERRORS as err:
+        message = str(err).splitlines()[0] if str(err) else type(err).__name__
+        print(f"lodeline: error: {message}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("lodeline: interrupted; the next run carries on from the last finished stage", file=sys.stderr)
+        return 130
+    except Exception as err:  # noqa: BLE001 - last line of defence: one line, details in the log
+        where = _record_traceback(args) if hasattr(args, "survey") else None
+        extra = f"; details in {where}" if where else ""
+        print(f"lodeline: internal error: {type(err).__name__}: {err}{extra}", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
