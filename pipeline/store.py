@@ -232,6 +232,9 @@ class RunStore:
             var.encoding = {}
             var.attrs = _jsonable(dict(var.attrs))
         ds.attrs = _jsonable(dict(ds.attrs))
+        if "crs_wkt" in ds.attrs and "crs" not in ds.variables:
+            # CF grid-mapping variable that the variables' grid_mapping="crs" refers to.
+            ds = ds.assign_coords(crs=((), np.int8(0), {"crs_wkt": ds.attrs["crs_wkt"], "spatial_ref": ds.attrs["crs_wkt"]}))
         if ds.sizes.get("reading", 0) > 0:
             ds = ds.chunk({"reading": STORE_CHUNK})
         ds.to_zarr(path, mode="w", zarr_format=2, consolidated=True)

@@ -1,0 +1,164 @@
+"""End to end through the command line on the demo survey: caching, reruns,
+status, exit codes, and a run killed with a signal that repairs itself."""
+
+from __future__ import annotations
+
+import gzip
+import json
+import os
+import random
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+import xarray as xr
+
+from lodeline.cli import main
+
+DEMO = Path(__file__).resolve().parents[1] / "demo_survey"
+
+
+def _survey(tmp_path: Path, extra: str = "") -> Path:
+    """The demo survey file, reading the demo data, with its run folder in tmp_path."""
+    text = (DEMO / "survey.toml").read_text()
+    text = text.replace('files = ["data/', f'files = ["{DEMO}/data/')
+    text = text.replace('folder = "run"', f'folder = "{tmp_path / "run"}"')
+    path = tmp_path / "survey.toml"
+    path.write_text(text + extra)
+    return path
+
+
+def _ran(capsys) -> list[str]:
+    out = capsys.readouterr().out
+    line = [l for l in out.splitlines() if l.startswith("stages run:")][0]
+    ran = line.split(":", 1)[1].split(";")[0].strip()
+    return [] if ran == "none" else [s.strip() for s in ran.split(",")]
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory):
+    """One complete run of the demo survey, shared by the tests that only read it."""
+    tmp = tmp_path_factory.mktemp("demo")
+    survey = _survey(tmp)
+    assert main(["run", str(survey), "--quiet"]) == 0
+    return survey, tmp / "run"
+
+
+def test_run_writes_manifest_and_outputs(demo_run):
+    survey, run = demo_run
+    manifest = json.loads((run / "manifest.json").read_text())
+    assert list(manifest["stages"])[:2] == ["ingest", "spikes"]
+    for name in ("ingest", "spikes"):
+        entry = manifest["stages"][name]
+        assert len(entry["key"]) == 32 and entry["wall_s"] >= 0
+        assert set(entry["components"]) >= {"params", "files", "code", "upstream"}
+        assert (run / name / "readings.zarr").is_dir()
+    assert (run / "ingest" / "rejected_rows.csv").is_file()
+    assert (run / "spikes" / "spikes_by_line.csv").is_file()
+
+
+def test_ledger_matches_raw_row_counts(demo_run):
+    """Readings in to ingest = data rows of the raw files; every stage adds up."""
+    survey, run = demo_run
+    rows = 0
+    for path in sorted((DEMO / "data").glob("readings_*.csv.gz")):
+        with gzip.open(path, "rt") as fh:
+            rows += sum(1 for _ in fh) - 1  # minus the header line
+    manifest = json.loads((run / "manifest.json").read_text())
+    ingest = manifest["stages"]["ingest"]["ledger"]
+    assert ingest["readings_in"] == rows
+    assert ingest["readings_in"] == ingest["readings_out"] + sum(ingest["rejected"].values())
+    spikes = manifest["stages"]["spikes"]["ledger"]
+    assert spikes["readings_in"] == ingest["readings_out"] == spikes["readings_out"]
+    # The generator's own fault list (demo_survey/data/qc_events.csv): 15 spikes and a
+    # 30-reading dropout; the QC stage must find exactly these.
+    assert spikes["flagged"]["spike"] == 15
+    assert spikes["flagged"]["dropout"] == 30
+
+
+def test_second_run_skips_and_set_reruns_downstream_only(tmp_path, capsys):
+    survey = _survey(tmp_path)
+    assert main(["run", str(survey), "--quiet"]) == 0
+    capsys.readouterr()
+    assert main(["run", str(survey)]) == 0
+    assert _ran(capsys) == []
+    assert main(["run", str(survey), "--set", "spikes.threshold_nT=2.5"]) == 0
+    assert _ran(capsys) == ["spikes"]
+    assert main(["status", str(survey), "--set", "spikes.threshold_nT=2.5"]) == 0
+    out = capsys.readouterr().out
+    assert "ingest" in out and "stale" not in out
+    assert main(["status", str(survey)]) == 0
+    out = capsys.readouterr().out
+    assert "parameter spikes.threshold_nT changed: 2.5 -> 1.0" in out
+
+
+def test_user_errors_exit_2_with_one_line_and_write_nothing(tmp_path, capsys):
+    survey = _survey(tmp_path)
+    cases = [
+        (["--set", "spikes.threshold_nt=2"], "unknown key spikes.threshold_nt; did you mean 'threshold_nT'"),
+        (["--set", "spikes.window_samples=-3"], "spikes.window_samples = -3"),
+        (["--set", 'spikes.threshold_nT="big"'], "wrong type"),
+        (["--set", 'inputs.readings.columns.field="field_nt"'], "field_nT"),
+    ]
+    for extra, message in cases:
+        code = main(["run", str(survey), "--quiet", *extra])
+        err = capsys.readouterr().err
+        assert code == 2, (extra, err)
+        assert message in err, (extra, err)
+        assert len(err.strip().splitlines()) == 1, err
+        store = tmp_path / "run" / "store"
+        assert not store.exists() or not any(p for p in store.iterdir() if not p.name.startswith(".")), extra
+
+
+def _outputs(run: Path) -> dict:
+    """Everything a run leaves behind that later work depends on."""
+    spikes = xr.open_zarr(run / "spikes" / "readings.zarr").load()
+    return {
+        "readings": spikes,
+        "spikes_by_line": (run / "spikes" / "spikes_by_line.csv").read_bytes(),
+        "rejected": (run / "ingest" / "rejected_rows.csv").read_bytes(),
+        "files": (run / "ingest" / "files.csv").read_bytes(),
+    }
+
+
+def test_killed_run_repairs_itself(tmp_path, demo_run):
+    """SIGKILL in the middle of a stage, then run again: same outputs as an
+    uninterrupted run. Bounded: three kills at random moments of the stages."""
+    reference = _outputs(demo_run[1])
+    survey = _survey(tmp_path)
+    rng = random.Random(20261202)
+    env = {**os.environ, "PYTHONUNBUFFERED": "1"}
+    log = tmp_path / "run" / "run.log"
+    killed_in = []
+    for trial, stage in enumerate(["ingest", "ingest", "spikes"]):
+        if stage == "spikes":
+            # Make spikes stale so that the kill lands inside it.
+            survey.write_text(survey.read_text().replace("threshold_nT = 1.0", f"threshold_nT = 1.0{trial}"))
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "lodeline", "run", str(survey), "--quiet"],
+            env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+        )
+        marker = f"[{stage}] running"
+        deadline = time.time() + 120
+        while time.time() < deadline and proc.poll() is None:
+            if log.exists() and log.read_text().count(marker) > sum(k == stage for k in killed_in):
+                break
+            time.sleep(0.02)
+        time.sleep(rng.uniform(0.05, 0.6))
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGKILL)
+            killed_in.append(stage)
+        proc.wait(timeout=60)
+        if stage == "spikes":
+            survey.write_text(survey.read_text().replace(f"threshold_nT = 1.0{trial}", "threshold_nT = 1.0"))
+    assert len(killed_in) >= 2, f"only {killed_in} killed mid-stage: the kill moments need adjusting"
+    done = subprocess.run([sys.executable, "-m", "lodeline", "run", str(survey), "--quiet"], env=env, capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    again = _outputs(tmp_path / "run")
+    xr.testing.assert_identical(again["readings"], reference["readings"])
+    for key in ("spikes_by_line", "rejected", "files"):
+        assert again[key] == reference[key], key
+    assert not list((tmp_path / "run" / "store").glob(".tmp-*"))
