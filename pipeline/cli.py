@@ -56,6 +56,7 @@ def _parser() -> argparse.ArgumentParser:
 
     p_stages = sub.add_parser("stages", help="list the stages and their parameters")
     p_stages.add_argument("stage", nargs="?", help="show only this stage's parameters")
+    p_stages.add_argument("--markdown", action="store_true", help="print the configuration reference (docs/configuration.md)")
     return parser
 
 
@@ -92,10 +93,52 @@ def _cmd_status(args) -> int:
     return 0
 
 
+MARKDOWN_INTRO = """# Configuration reference
+
+A survey is one TOML file; paths in it are relative to it. Every key below has a
+default (unless marked required) and is validated: an unknown key, a wrong type or
+an out-of-range value is refused with the key's name and what is allowed. Any key
+can be overridden for one run with `--set table.key=value`. This page is printed by
+`lodeline stages --markdown`; a test checks that it matches the code.
+"""
+
+
+def _markdown(stages) -> str:
+    from .config import RUN_PARAMS, SURVEY_PARAMS
+
+    out = [MARKDOWN_INTRO]
+
+    def table(title, params, note=""):
+        out.extend([f"## `[{title}]`", ""])
+        if note:
+            out.extend([note, ""])
+        out.extend(["| key | default | allowed | meaning |", "| --- | --- | --- | --- |"])
+        for r in describe(params):
+            if r["default"] is None:
+                default = "not set" if r["optional"] else "required"
+            else:
+                default = f"`{r['default']!r}`"
+            out.append(f"| `{r['key']}` | {default} | {r['allowed']} | {r['doc']} |")
+        out.append("")
+
+    table("survey", SURVEY_PARAMS)
+    table("run", RUN_PARAMS)
+    for s in stages:
+        for key, params in s.input_params.items():
+            table(f"inputs.{key}", params, f"Read by the `{s.name}` stage.")
+    for s in stages:
+        after = f" Runs after: {', '.join(s.after)}." if s.after else ""
+        table(s.name, s.params, f"{s.summary}.{after}".replace("..", "."))
+    return "\n".join(out)
+
+
 def _cmd_stages(args) -> int:
     from .runner import discover_stages
 
     stages = discover_stages()
+    if args.markdown:
+        print(_markdown(stages), end="")
+        return 0
     if args.stage and args.stage not in {s.name for s in stages}:
         raise ConfigError(f"unknown stage {args.stage!r} (stages: {', '.join(s.name for s in stages)})")
     for s in stages:

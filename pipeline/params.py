@@ -181,6 +181,6 @@ def validate_table(params: tuple[Param, ...], table: dict | None, where: str) ->
 def describe(params: tuple[Param, ...]) -> list[dict]:
     """Rows describing each parameter (for documentation and ``lodeline params``)."""
     return [
-        {"key": p.name, "default": p.default, "allowed": p.allowed(), "doc": p.doc}
+        {"key": p.name, "default": p.default, "optional": p.optional, "allowed": p.allowed(), "doc": p.doc}
         for p in params
     ]

@@ -16,55 +16,58 @@ Time gaps
     ``gap_before``.
 
 Spikes
-    Three steps on the valid readings of each gap-free run of a segment
-    (dropouts are left out, time gaps split the run):
+    Worked on the valid readings of each gap-free run of a segment
+    (dropouts are left out, time gaps split the run), in three steps.
 
-    1. the *fourth-difference residual*: the departure of a reading from the
-       cubic through its four nearest neighbours (two on each side; at the
-       run ends, the four on the open side). The fourth difference of a
-       cubic is zero (Hildebrand 1974), so the residual of a reading is
+    1. *Candidates* from the fourth-difference residual: the departure of a
+       reading from the cubic through its four nearest neighbours (two on
+       each side; at the run ends, the four on the open side). The fourth
+       difference of a cubic is zero (Hildebrand 1974), so this residual is
        ``D4 / c`` where ``D4 = x[s] - 4 x[s+1] + 6 x[s+2] - 4 x[s+3] + x[s+4]``
        is the fourth difference of the five readings starting at ``s`` and
-       ``c`` is the coefficient of that reading in it (6 in the middle, -4
-       next to the middle, 1 at the ends). A smooth anomaly is almost a
-       cubic over five samples, so this residual ignores it; but a spike
-       also leaks into the residuals of its neighbours (-2/3 and 1/6 of it),
-       and a level step gives a residual on both sides of the step.
-    2. the *detrended running-median residual*: the departure of a reading
-       from the median of the ``window_samples`` readings centred on it
-       (truncated at the run ends), after removing a local straight line
+       ``c`` the coefficient of the reading in it (6 in the middle, -4 next
+       to it, 1 at the ends). A smooth anomaly is nearly a cubic over five
+       samples, so it gives almost nothing; a spike gives its full size,
+       but it also leaks into its neighbours (-2/3 and 1/6 of it), and the
+       two readings of a two-sample spike get only 1/3 of it against 1/2
+       for their neighbours. So the readings next to every candidate are
+       taken in as candidates too.
+    2. *Confirmation* against the Lagrange cubic through the nearest clean
+       readings, two on each side where possible (Hildebrand 1974), in two
+       passes: first bridging over all candidates; then, once the
+       candidates departing by at least half the most within three
+       readings are known ("strong"), bridging over the strong ones only.
+       So a clean neighbour of a spike is judged against its own close
+       neighbours, a spike against readings outside it, and two spikes a
+       few readings apart each on their own. A candidate with no clean
+       reading on one side (at a run end, where a one-sided extrapolation
+       would be too noisy) is judged by the running median of step 3 alone.
+    3. *Veto for level steps*: a reading next to a level step departs from
+       a cubic bridged across the step, but it agrees with its own side. A
+       confirmed reading is dropped when it agrees both with the cubic
+       extrapolated from one side (the fourth difference of the five
+       readings ending or starting at it) and with the detrended running
+       median: the median of the ``window_samples`` readings centred on it
+       (truncated at the run ends) after removing a local straight line
        whose slope is the median of the successive differences in the
        window (a restriction of Sen's 1968 median-of-slopes estimator to
-       successive pairs). The medians ignore the one or two readings of a
-       spike, so the neighbours of a spike and the readings at a level step
-       get small residuals, and removing the slope keeps a spike on the
-       steep flank of an anomaly visible. Its weakness is curvature: near
-       the peak of an anomaly it is biased by several nT.
-    3. a reading is a *suspect* when both residuals exceed their limits,
-       which keeps what each test gets right (the first clears smooth
-       anomalies, the second the neighbours of a spike in quiet field and
-       level steps). Near the curved peak of a large anomaly the clean
-       neighbours of a spike can still be suspects (leak plus curvature
-       bias), so every suspect is *confirmed* against the Lagrange cubic
-       through its nearest clean readings, two on each side where possible
-       (Hildebrand 1974): first bridging over all suspects of its cluster;
-       then, once the suspects departing by at least half the most in their
-       cluster are known ("strong"), bridging over the strong ones only, so
-       that a clean neighbour is judged against its own close neighbours and
-       a two-sample spike against readings outside it. A suspect with no
-       clean reading on one side (at a run end) keeps the decision of
-       step 3.
+       successive pairs). The median ranks readings, so a step does not
+       move it, and removing the slope keeps a spike on a steep flank
+       visible; near the curved peak of an anomaly it is biased by several
+       nT, which is why it only vetoes together with the one-sided test.
 
     Every limit is ``max(threshold_nT, noise_multiple * sigma)``. For the
-    two residuals sigma is their robust scale over the whole segment,
-    ``1.4826 * MAD`` (median absolute deviation about the median), for the
-    fourth difference scaled at the run ends by the larger noise of the
-    one-sided stencils (1.5 next to an end, 6 at the end, the ratio of the
-    stencil coefficients). For the confirmation sigma is the noise of one
-    reading (fourth-difference sigma times 6 / sqrt(70), white noise)
-    times ``sqrt(1 + sum(w**2))`` for the cubic's weights ``w``. This is the
-    Hampel identifier (Hampel 1974; named by Davies & Gather 1993;
-    moving-window form as in Pearson 2002) applied to local residuals.
+    fourth-difference and running-median residuals sigma is their robust
+    scale over the whole segment, ``1.4826 * MAD`` (median absolute
+    deviation about the median), for the fourth difference scaled at the
+    run ends by the larger noise of the one-sided stencils (1.5 next to an
+    end, 6 at the end: the ratio of the stencil coefficients). For the
+    bridged and one-sided cubics sigma is the noise of one reading (the
+    fourth-difference sigma times 6 / sqrt(70), white noise) times
+    ``sqrt(1 + sum(w**2))`` for the cubic's weights ``w`` (sqrt(70) for
+    the one-sided cubic). This is the Hampel identifier (Hampel 1974;
+    named by Davies & Gather 1993; moving-window form as in Pearson 2002)
+    applied to local residuals.
 
 Why the defaults are what they are
 ----------------------------------
@@ -79,8 +82,9 @@ Why the defaults are what they are
     A floor below which a departure is not worth flagging in a survey
     whose targets are tens of nT or more, and a guard for quantised or very
     quiet data where the MAD can be zero. With 0.05 nT noise the 6-sigma
-    limits are about 0.4 nT, so the floor decides: a 20 nT one-sample
-    spike gives residuals near 20 nT and is flagged.
+    limits are about 0.4 nT (2.5 nT for the one-sided cubics of the step
+    veto), so the floor decides: a 20 nT one-sample spike departs by about
+    20 nT in every test and is flagged.
     A compact target anomaly of 200 nT peak and a half-width of 10 samples
     (for example a point dipole 4 m below the sensor, sampled every 0.2 m)
     gives a fourth-difference residual of about 0.03 nT at its peak, well
@@ -90,8 +94,9 @@ Why the defaults are what they are
 ``window_samples = 9``
     The smallest odd window whose truncated half at a run end (5 readings)
     still has a majority of clean readings when a two-sample spike sits at
-    the end, so spikes at segment starts are handled; wider windows cost
-    time and sharpen nothing (the anomaly is cleared by the first test).
+    the end, so spikes at segment starts are handled (that is where the
+    running median decides alone); wider windows cost time and, near
+    anomalies, add curvature bias.
 ``stuck_samples = 10``
     With a reading resolution of 0.001 nT and 0.05 nT noise two consecutive
     readings are equal about once in 180, so ten equal readings in a row
@@ -109,14 +114,17 @@ Limits
     Runs of fewer than five valid readings are not tested for spikes. The
     medians tolerate up to (window_samples - 1) / 2 - 1 faulty readings in
     a window, so a burst of spikes denser than that is only partly flagged.
-    The confirmation assumes white noise between neighbouring readings.
-    On anomalies much larger or sharper than the design case (our own
-    synthetic trials: 1000 nT or more at 6-7 samples of half-width) a
-    spike on the peak may also take one or two of its clean neighbours, a
-    spike whose size is close to the local curvature bias can be missed,
-    and above about 3000 nT at 6 samples the peak itself departs from a
-    cubic by more than the 1 nT floor; raise ``threshold_nT`` for such
-    surveys.
+    The noise scalings assume white noise between neighbouring readings.
+    A two-sample spike must exceed about three times ``threshold_nT`` to be
+    seen. Our own synthetic trials (0.05 nT noise, spikes of 3-500 nT on
+    and around the anomaly of the design case, 200 nT and 10 samples of
+    half-width) flag every spike above 5 nT and no other reading; spikes of
+    about 3 nT on the curved part of the anomaly are sometimes missed. On
+    anomalies much larger or sharper (1000 nT or more at 6-8 samples of
+    half-width) a spike near the peak may also take clean neighbours, as a
+    cubic no longer predicts the field within 1 nT there, and above about
+    3000 nT at 6 samples the peak itself is flagged: raise ``threshold_nT``
+    for such surveys.
 
 References
 ----------

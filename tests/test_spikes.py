@@ -272,6 +272,48 @@ def test_spikes_on_the_steep_flank_are_flagged():
     np.testing.assert_array_equal(np.flatnonzero(flags & SPIKE), at)
 
 
+@pytest.mark.parametrize("size_nT", [20.0, -20.0, 500.0, -500.0])
+@pytest.mark.parametrize("width", [1, 2])
+def test_spike_on_the_anomaly_peak_flagged_alone(size_nT, width):
+    # On the curved peak the running median is biased by several nT and the
+    # neighbours of a spike depart from the local cubic (leak); only the
+    # bridged confirmation tells them apart. Expected: exactly the spike.
+    rng = np.random.default_rng(20)
+    along = np.arange(4000) * STEP_M
+    anomaly = dipole_total_field(along, ANOMALY_AT * STEP_M, DEPTH_M, PEAK_NT)
+    peak = int(np.argmax(anomaly))
+    field = BASE_NT + anomaly + rng.normal(0.0, NOISE_NT, anomaly.size)
+    at = np.arange(peak, peak + width)
+    field[at] += size_nT
+    ds, segments = make_readings([field])
+    flags, _ = run_stage(ds, segments)
+    np.testing.assert_array_equal(np.flatnonzero(flags & SPIKE), at)
+
+
+def test_spikes_a_few_readings_apart():
+    rng = np.random.default_rng(21)
+    along = np.arange(4000) * STEP_M
+    anomaly = dipole_total_field(along, ANOMALY_AT * STEP_M, DEPTH_M, PEAK_NT)
+    field = BASE_NT + anomaly + rng.normal(0.0, NOISE_NT, anomaly.size)
+    at = np.array([500, 506, 1985, 1990, 1994])  # quiet field, then on the anomaly
+    field[at] += [250.0, -80.0, -250.0, 80.0, 30.0]
+    ds, segments = make_readings([field])
+    flags, _ = run_stage(ds, segments)
+    np.testing.assert_array_equal(np.flatnonzero(flags & SPIKE), at)
+
+
+def test_short_segments_are_left_alone():
+    rng = np.random.default_rng(22)
+    short = noisy_line(4, rng)
+    short[1] += 100.0  # fewer than five readings: not testable, not flagged
+    single = noisy_line(1, rng)
+    ds, segments = make_readings([noisy_line(500, rng), short, single], lines=[0, 1, 2])
+    flags, result = run_stage(ds, segments)
+    assert not np.any(flags & SPIKE)
+    assert result.tables["spikes_by_line"]["readings"].tolist() == [500, 4, 1]
+    assert np.isnan(result.tables["spikes_by_line"]["noise_nT"].iloc[2])
+
+
 def test_two_sample_spike_flagged_without_neighbours():
     rng = np.random.default_rng(3)
     field = noisy_line(2000, rng)
