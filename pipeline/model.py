@@ -80,6 +80,8 @@ __all__ = [
     "flag_mask",
     "flag_attrs",
     "add_flags",
+    "current_residual",
+    "apply_correction",
     "validate_readings",
     "validate_grid",
     "segment_chunks",
@@ -140,6 +142,48 @@ def add_flags(readings: xr.Dataset, condition, name: str) -> xr.Dataset:
     flags = readings["flags"]
     data = flags.data | (cond.astype(np.uint32) * bit)
     return readings.assign(flags=(flags.dims, data, dict(flags.attrs)))
+
+
+def current_residual(readings: xr.Dataset) -> xr.DataArray:
+    """The field left after the corrections applied so far, nT.
+
+    ``residual`` when a correction stage has run, else ``total_field``.
+    """
+    return readings["residual"] if "residual" in readings else readings["total_field"]
+
+
+def apply_correction(readings: xr.Dataset, name: str, correction, long_name: str, **attrs) -> xr.Dataset:
+    """Add a correction variable and subtract it from the residual.
+
+    Parameters
+    ----------
+    readings : xarray.Dataset
+        Readings following this module's conventions.
+    name : str
+        Name of the new variable (``"diurnal"``, ``"main_field"``...).
+    correction : xarray.DataArray or dask array
+        Along ``reading``, the value removed from each reading, in nT. NaN
+        where the correction is unknown (the residual becomes NaN there; flag
+        those readings).
+    long_name : str
+        What the correction is, in words.
+    **attrs
+        Further attributes (the parameters that made it, for example).
+
+    Returns
+    -------
+    xarray.Dataset
+        With ``name`` (attribute ``role = "correction"``, units nT) and an
+        updated ``residual`` (nT) = previous residual - correction.
+    """
+    data = correction.data if isinstance(correction, xr.DataArray) else correction
+    previous = current_residual(readings)
+    var_attrs = {"units": "nT", "long_name": long_name, "role": "correction", **attrs}
+    out = readings.assign({name: ((READING_DIM,), data, var_attrs)})
+    residual = previous.data - data
+    return out.assign(
+        residual=((READING_DIM,), residual, {"units": "nT", "long_name": "total field less the corrections applied so far"})
+    )
 
 
 def flag_attrs() -> dict:

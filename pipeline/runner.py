@@ -275,11 +275,26 @@ def compute_on(scheduler: str, workers: int):
 # ---------------------------------------------------------------------------
 # Running
 # ---------------------------------------------------------------------------
+class _ConsoleHandler(logging.StreamHandler):
+    """Log lines on standard error that do not break a progress bar."""
+
+    def __init__(self):
+        super().__init__(sys.stderr)
+
+    def emit(self, record):
+        try:
+            from tqdm import tqdm
+
+            tqdm.write(self.format(record), file=sys.stderr)
+        except Exception:  # noqa: BLE001 - logging must never raise
+            self.handleError(record)
+
+
 def _setup_logging(store: RunStore, quiet: bool) -> list[logging.Handler]:
     log.setLevel(logging.INFO)
     file_handler = logging.FileHandler(store.log_path, encoding="utf-8")
     file_handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s", "%Y-%m-%dT%H:%M:%S"))
-    console = logging.StreamHandler(sys.stderr)
+    console = _ConsoleHandler()
     console.setLevel(logging.WARNING if quiet else logging.INFO)
     console.setFormatter(logging.Formatter("%(message)s"))
     for h in (file_handler, console):
@@ -478,12 +493,38 @@ def _ledger(name: str, data: dict, result: StageResult, tmp: Path, chunk_reading
             f"stage {name}: reading counts do not add up: {readings_in} in, {readings_out} out, "
             f"{sum(rejected.values())} rejected"
         )
+    ups = [d["readings"] for d in data.values() if "readings" in d]
+    before = set(ups[0].data_vars) if ups else set()
     return {
         "readings_in": readings_in,
         "readings_out": readings_out,
         "rejected": rejected,
         "flagged": _flag_counts(written) if readings_out else {"any": 0},
+        "new_flags": _new_flag_counts(written, ups[0]) if ups and readings_out == readings_in else {},
+        "removed": _removed(written, before) if readings_out else {},
     }
+
+
+def _new_flag_counts(written, upstream) -> dict:
+    """Readings that this stage flagged (the bit was not set upstream), by flag."""
+    new = written["flags"].data & ~upstream["flags"].data.rechunk(written["flags"].data.chunks)
+    names = list(FLAGS)
+    values = dask.compute(*[((new >> np.uint32(FLAGS[n][0])) & np.uint32(1)).sum() for n in names])
+    return {n: int(v) for n, v in zip(names, values) if int(v)}
+
+
+def _removed(written, before: set) -> dict:
+    """Range and RMS (nT) of each correction this stage added."""
+    import dask.array as da
+
+    out = {}
+    for name, var in written.data_vars.items():
+        if name in before or var.attrs.get("role") != "correction":
+            continue
+        x = var.data
+        lo, hi, ms, n = dask.compute(da.nanmin(x), da.nanmax(x), da.nanmean(x * x), da.isfinite(x).sum())
+        out[name] = {"min_nT": float(lo), "max_nT": float(hi), "rms_nT": float(np.sqrt(ms)), "readings": int(n)}
+    return out
 
 
 def _log_stage(name: str, record: dict) -> None:
@@ -495,6 +536,13 @@ def _log_stage(name: str, record: dict) -> None:
             "[%s] readings in %d, out %d; rejected: %s; flagged: %s",
             name, ledger["readings_in"], ledger["readings_out"], rejected, flagged,
         )
+        new = ", ".join(f"{k} {v}" for k, v in ledger.get("new_flags", {}).items()) or "none"
+        log.info("[%s] newly flagged by this stage: %s", name, new)
+        for var, r in ledger.get("removed", {}).items():
+            log.info(
+                "[%s] removed %s: range %.3f to %.3f nT, RMS %.3f nT over %d readings",
+                name, var, r["min_nT"], r["max_nT"], r["rms_nT"], r["readings"],
+            )
     for key, value in (record.get("summary") or {}).items():
         if isinstance(value, (int, float, str)):
             log.info("[%s] %s: %s", name, key, value)
