@@ -162,3 +162,23 @@ def test_killed_run_repairs_itself(tmp_path, demo_run):
     for key in ("spikes_by_line", "rejected", "files"):
         assert again[key] == reference[key], key
     assert not list((tmp_path / "run" / "store").glob(".tmp-*"))
+
+
+def test_distributed_scheduler_gives_identical_outputs(tmp_path, demo_run):
+    """The same configuration on a dask distributed cluster (two worker
+    processes) writes the same readings and tables as on threads."""
+    distributed = pytest.importorskip("distributed")
+    survey = _survey(tmp_path)
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+        assert main(["run", str(survey), "--quiet", "--scheduler", cluster.scheduler_address]) == 0
+    ours, theirs = _outputs(tmp_path / "run"), _outputs(demo_run[1])
+    xr.testing.assert_identical(ours["readings"], theirs["readings"])
+    for key in ("spikes_by_line", "rejected", "files"):
+        assert ours[key] == theirs[key], key
+
+
+def test_unreachable_scheduler_is_a_clear_error(tmp_path, capsys):
+    survey = _survey(tmp_path)
+    assert main(["run", str(survey), "--quiet", "--scheduler", "tcp://127.0.0.1:9"]) == 2
+    err = capsys.readouterr().err
+    assert "cannot reach the dask scheduler" in err and len(err.strip().splitlines()) == 1
