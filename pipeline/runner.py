@@ -376,8 +376,11 @@ def run_survey(
                 "config": str(config.path),
                 "config_hash": hash_json(config.raw),
                 "survey": {k: v for k, v in config.survey.items() if k != "crs_wkt"},
+                "stage_order": names,
             }
         )
+        # Keep the stages in run order whatever order earlier runs recorded them in.
+        manifest["stages"] = {n: manifest["stages"][n] for n in names if n in manifest["stages"]}
         wanted = _ancestors(stages, until) if until else set(names)
         forced = _descendants(stages, set(redo))
         log.info("lodeline %s: survey %r, run folder %s", __version__, config.survey["name"], store.folder)

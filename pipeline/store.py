@@ -159,7 +159,7 @@ class RunStore:
         return manifest
 
     def write_manifest(self, manifest: dict) -> None:
-        atomic_write_text(self.manifest_path, json.dumps(_jsonable(manifest), indent=2, sort_keys=True) + "\n")
+        atomic_write_text(self.manifest_path, json.dumps(_jsonable(manifest), indent=2) + "\n")
 
     # -- stage outputs -----------------------------------------------------
     def output_dir(self, stage: str, key: str) -> Path:

@@ -79,20 +79,39 @@ def test_ledger_matches_raw_row_counts(demo_run):
     assert spikes["flagged"]["dropout"] == 30
 
 
+CHANGES = [
+    # (stage, a changed parameter); each run keeps the earlier changes, so only the
+    # newly changed stage and the stages downstream of it must run.
+    ("spikes", "spikes.threshold_nT=2.5"),
+    ("positions", "positions.course_smoothing_m=12"),
+    ("diurnal", "diurnal.rate_window_s=90"),
+    ("main_field", "main_field.lattice_spacing_m=800"),
+    ("heading", "heading.bin_m=6"),
+    ("levelling", "levelling.median_window_m=45"),
+]
+
+
 def test_second_run_skips_and_set_reruns_downstream_only(tmp_path, capsys):
+    from lodeline.runner import discover_stages
+
+    order = [s.name for s in discover_stages()]
     survey = _survey(tmp_path)
     assert main(["run", str(survey), "--quiet"]) == 0
     capsys.readouterr()
     assert main(["run", str(survey)]) == 0
     assert _ran(capsys) == []
-    assert main(["run", str(survey), "--set", "spikes.threshold_nT=2.5"]) == 0
-    assert _ran(capsys) == ["spikes"]
-    assert main(["status", str(survey), "--set", "spikes.threshold_nT=2.5"]) == 0
+    sets: list[str] = []
+    for stage, change in CHANGES:
+        sets += ["--set", change]
+        assert main(["run", str(survey), *sets]) == 0
+        assert _ran(capsys) == order[order.index(stage):], change
+    assert main(["status", str(survey), *sets]) == 0
     out = capsys.readouterr().out
     assert "ingest" in out and "stale" not in out
     assert main(["status", str(survey)]) == 0
     out = capsys.readouterr().out
     assert "parameter spikes.threshold_nT changed: 2.5 -> 1.0" in out
+    assert "parameter positions.course_smoothing_m changed: 12" in out
 
 
 def test_user_errors_exit_2_with_one_line_and_write_nothing(tmp_path, capsys):

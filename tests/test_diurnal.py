@@ -1,4 +1,4 @@
-"""Tests of the diurnal-correction stage (``lodeline.steps._wip_diurnal``).
+"""Tests of the diurnal-correction stage (``lodeline.steps.diurnal``).
 
 All data are invented: survey lines sampled at 10 Hz over a constant field,
 a synthetic external field (a daily variation plus micropulsations) seen by
@@ -22,7 +22,7 @@ from scipy.interpolate import interp1d
 from lodeline.model import DataError, StageContext, flag_attrs, flag_mask, segment_chunks, segments_dataset, validate_readings
 from lodeline.params import ParameterError
 from lodeline.progress import make_progress
-from lodeline.steps import _wip_diurnal as diurnal
+from lodeline.steps import diurnal as diurnal
 
 GAP = flag_mask("base_station_gap")
 RATE = flag_mask("diurnal_rate")

@@ -1,4 +1,4 @@
-"""Tests of the heading-error stage (``lodeline.steps._wip_heading`` and its helpers).
+"""Tests of the heading-error stage (``lodeline.steps.heading`` and its helpers).
 
 All data are invented: straight lines over a smooth regional field, per
 sensor offsets, drifts and heading errors ``a + b cos(h) + c sin(h)``, white
@@ -24,7 +24,7 @@ from lodeline.progress import make_progress
 from lodeline.steps import _heading_bins as hbins
 from lodeline.steps import _heading_fit as hfit
 from lodeline.steps import _heading_table as htable
-from lodeline.steps import _wip_heading as heading
+from lodeline.steps import heading as heading
 
 T0 = np.datetime64("2026-05-14T07:40:00", "ns")
 MAIN_NT = 49_900.0

@@ -1,4 +1,4 @@
-"""Tests of the levelling stage (``lodeline.steps._wip_levelling``).
+"""Tests of the levelling stage (``lodeline.steps.levelling``).
 
 All data are invented (``tests/_levelling_synth.py``): parallel survey lines
 of several sensors and tie lines across them over a smooth field, with
@@ -24,7 +24,7 @@ from _levelling_synth import T0, dipole_anomaly, straight_tracks, synthetic_surv
 from lodeline.model import DataError, StageContext, flag_mask, validate_readings  # noqa: E402
 from lodeline.params import ParameterError  # noqa: E402
 from lodeline.progress import make_progress  # noqa: E402
-from lodeline.steps import _wip_levelling as levelling  # noqa: E402
+from lodeline.steps import levelling as levelling  # noqa: E402
 from lodeline.steps._levelling_median import sensor_levels  # noqa: E402
 
 SIGMA = 0.05  # sensor noise of the synthetic surveys, nT

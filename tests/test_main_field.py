@@ -37,7 +37,7 @@ from lodeline.params import ParameterError, validate_table
 from lodeline.progress import make_progress
 from lodeline.steps import _main_field_igrf as igrf
 from lodeline.steps import _main_field_lattice as lattice_mod
-from lodeline.steps import _wip_main_field as stage
+from lodeline.steps import main_field as stage
 
 # --------------------------------------------------------------------------
 # Synthetic surveys
