@@ -79,18 +79,34 @@ def discover_stages() -> list[Stage]:
     return sorted(found.values(), key=lambda s: (_depth(s.name), s.order, s.name))
 
 
-def _code_hash(stage: Stage) -> str:
-    """Hash of the stage module's source, the shared private step modules and the version."""
+def code_files(stage: Stage) -> list[Path]:
+    """Source files a stage's output depends on: its module and the private
+    step modules it uses (found by name in the source, transitively), plus the
+    shared data model and parameter modules."""
     module = inspect.getmodule(stage.run)
-    parts = [__version__, inspect.getsource(module) if module else stage.name]
-    steps_dir = Path(module.__file__).parent if module else None
-    if steps_dir is not None:
-        for helper in sorted(steps_dir.glob("_*.py")):
-            if helper.name != "__init__.py":
-                parts.append(helper.read_text())
-    for shared in ("model.py", "params.py"):
-        parts.append((Path(__file__).parent / shared).read_text())
-    return hash_json(parts)
+    if module is None or not getattr(module, "__file__", None):
+        return []
+    steps_dir = Path(module.__file__).parent
+    helpers = {p.stem: p for p in steps_dir.glob("_*.py") if p.name != "__init__.py"}
+    seen: list[Path] = []
+    todo = [Path(module.__file__)]
+    while todo:
+        path = todo.pop()
+        if path in seen:
+            continue
+        seen.append(path)
+        text = path.read_text()
+        todo.extend(p for name, p in helpers.items() if name in text and p not in seen)
+    return sorted(seen) + [Path(__file__).parent / "model.py", Path(__file__).parent / "params.py"]
+
+
+def _code_hash(stage: Stage) -> str:
+    """Hash of :func:`code_files` and the version: editing one stage's code
+    reruns that stage and its downstream stages, not the others."""
+    files = code_files(stage)
+    if not files:
+        return hash_json([__version__, stage.name])
+    return hash_json([__version__, [(p.name, p.read_text()) for p in files]])
 
 
 # ---------------------------------------------------------------------------

@@ -126,3 +126,14 @@ def test_stage_modules_are_discovered():
     names = [s.name for s in discover_stages()]
     # The two stages of the foundation; later stages append to this list.
     assert names[:2] == ["ingest", "spikes"]
+
+
+def test_code_hash_covers_a_stage_own_helpers_only():
+    from lodeline.runner import code_files
+
+    stages = {s.name: s for s in discover_stages()}
+    ingest = {p.name for p in code_files(stages["ingest"])}
+    assert {"ingest.py", "_ingest_read.py", "_ingest_store.py", "model.py", "params.py"} <= ingest
+    assert not any(name.startswith("_levelling") for name in ingest)
+    levelling = {p.name for p in code_files(stages["levelling"])}
+    assert "_levelling_tie.py" in levelling and "_ingest_read.py" not in levelling
