@@ -8,12 +8,10 @@ its own, so the results are the same for any chunks.
 
 from __future__ import annotations
 
-import dask.array as da
 import numpy as np
 import xarray as xr
 
-from lodeline.model import segment_chunks
-
+from ._blocks import block_of_segment
 from ._diurnal_base import bracket
 
 __all__ = [
@@ -25,9 +23,6 @@ __all__ = [
     "block_codes",
     "block_segment_stats",
     "block_gap_counts",
-    "reading_chunks",
-    "as_dask",
-    "block_starts",
     "segments_per_block",
 ]
 
@@ -154,38 +149,8 @@ def block_gap_counts(time: np.ndarray, code: np.ndarray, *, t0_ns: int, t_s: np.
 # --------------------------------------------------------------------------
 
 
-def reading_chunks(readings: xr.Dataset, segments: xr.Dataset, target: int) -> tuple:
-    """Chunks of the readings: those of ``total_field``, or whole segments when in memory."""
-    chunks = readings["total_field"].chunks
-    if chunks is not None:
-        return chunks
-    lengths = np.asarray(segments["stop"].values) - np.asarray(segments["start"].values)
-    return (segment_chunks(lengths, target),)
-
-
-def as_dask(var: xr.DataArray, chunks: tuple) -> da.Array:
-    """The dask array of ``var`` with the given chunks (wrapping in-memory data)."""
-    data = var.data
-    if not isinstance(data, da.Array):
-        return da.from_array(np.asarray(data), chunks=chunks)
-    if data.chunks != chunks:
-        return data.rechunk(chunks)
-    return data
-
-
 def segments_per_block(segments: xr.Dataset, chunks: tuple) -> tuple[np.ndarray, np.ndarray]:
     """Block index of every segment, and segments per block."""
-    bounds = np.cumsum((0,) + tuple(chunks[0]))
-    starts = np.asarray(segments["start"].values, dtype=np.int64)
-    block = np.searchsorted(bounds, starts, side="right") - 1
-    counts = np.bincount(block, minlength=len(chunks[0])) if starts.size else np.zeros(len(chunks[0]), int)
+    block = block_of_segment(segments, chunks)
+    counts = np.bincount(block, minlength=len(chunks[0])) if block.size else np.zeros(len(chunks[0]), int)
     return block, counts
-
-
-def block_starts(segments: xr.Dataset, chunks: tuple) -> da.Array:
-    """Segment starts relative to their block, one dask block per reading block."""
-    bounds = np.cumsum((0,) + tuple(chunks[0]))
-    starts = np.asarray(segments["start"].values, dtype=np.int64)
-    block, counts = segments_per_block(segments, chunks)
-    relative = starts - bounds[block] if starts.size else starts
-    return da.from_array(relative, chunks=(tuple(int(c) for c in counts),))

@@ -25,14 +25,11 @@ import dask.array as da
 import numpy as np
 import xarray as xr
 
-from lodeline.model import segment_chunks
+from ._blocks import block_of_segment, segment_ids
 
 __all__ = [
-    "reading_chunks",
-    "as_dask",
     "block_bounds",
     "per_block",
-    "segment_ids",
     "accepted_mask",
     "along_track",
     "block_tracks",
@@ -54,25 +51,6 @@ TRACK_FIELDS = ("t_first_s", "t_last_s", "accepted", "spacing_m", "median_nT", "
 # --------------------------------------------------------------------------
 
 
-def reading_chunks(readings: xr.Dataset, segments: xr.Dataset, target: int) -> tuple:
-    """Chunks of the readings: those of ``total_field``, or whole segments when in memory."""
-    chunks = readings["total_field"].chunks
-    if chunks is not None:
-        return chunks
-    lengths = np.asarray(segments["stop"].values) - np.asarray(segments["start"].values)
-    return (segment_chunks(lengths, target),)
-
-
-def as_dask(var, chunks: tuple) -> da.Array:
-    """The dask array of ``var`` (DataArray or array) with the given chunks."""
-    data = var.data if isinstance(var, xr.DataArray) else var
-    if not isinstance(data, da.Array):
-        return da.from_array(np.asarray(data), chunks=chunks)
-    if data.chunks != chunks:
-        return data.rechunk(chunks)
-    return data
-
-
 def block_bounds(chunks: tuple) -> np.ndarray:
     """Reading index of the start of each block, and the end (length blocks + 1)."""
     return np.cumsum((0,) + tuple(int(c) for c in chunks[0]))
@@ -80,18 +58,8 @@ def block_bounds(chunks: tuple) -> np.ndarray:
 
 def per_block(segments: xr.Dataset, chunks: tuple) -> list[np.ndarray]:
     """Global segment numbers held by each block."""
-    bounds = block_bounds(chunks)
-    starts = np.asarray(segments["start"].values, dtype=np.int64)
-    block = np.searchsorted(bounds, starts, side="right") - 1
+    block = block_of_segment(segments, chunks)
     return [np.flatnonzero(block == b) for b in range(len(chunks[0]))]
-
-
-def segment_ids(starts: np.ndarray, n: int) -> np.ndarray:
-    """Segment number (within the block) of each reading of a block."""
-    seg = np.zeros(n, dtype=np.int64)
-    if len(starts) > 1:
-        seg[np.asarray(starts[1:], dtype=np.int64)] = 1
-    return np.cumsum(seg)
 
 
 def accepted_mask(easting, northing, time_ns, values, flags, exclude: int) -> np.ndarray:
@@ -437,7 +405,7 @@ def block_polynomial(time, starts, coefficients, t_first_s, t_last_s, *, t_ref_n
     """
     t = _time_ns(time)
     starts = np.asarray(starts, dtype=np.int64)
-    seg = segment_ids(starts, t.size)
+    seg = segment_ids(starts, t.size, stage="levelling")
     coefficients = np.asarray(coefficients, dtype=np.float64).reshape(starts.size, -1)
     ts = (t - t_ref_ns) / 1e9
     ts[t == np.iinfo(np.int64).min] = np.nan

@@ -106,17 +106,15 @@ from lodeline.model import (
 from lodeline.params import Param, ParameterError, validate_table
 
 from ._diurnal_base import BaseSeries, curve_table, gap_table, prepare_base
+from ._blocks import as_dask, block_starts, reading_chunks
 from ._diurnal_blocks import (
     GAP_CODE,
     RATE_CODE,
     SEGMENT_STATS,
-    as_dask,
     block_codes,
     block_correction,
     block_gap_counts,
     block_segment_stats,
-    block_starts,
-    reading_chunks,
     segments_per_block,
 )
 

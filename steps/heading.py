@@ -128,10 +128,11 @@ from lodeline.model import (
     apply_correction,
     current_residual,
     flag_mask,
-    segment_chunks,
     validate_readings,
 )
 from lodeline.params import Param, ParameterError, validate_table
+
+from ._blocks import as_dask, block_of_segment, reading_chunks
 
 from . import _heading_bins as hbins
 from . import _heading_fit as hfit
@@ -275,7 +276,7 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
             "the positions stage adds it: run it before this stage"
         )
     sensor_names = [str(s) for s in readings.attrs["sensor_names"]]
-    chunks = _reading_chunks(readings, segments, context.chunk_readings)
+    chunks = reading_chunks(readings, segments, context.chunk_readings, current_residual(readings))
     tables: dict[str, pd.DataFrame] = {}
     warnings: list[str] = []
     extra: dict = {}
@@ -302,8 +303,8 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
         context.log.warning(message)
     tables["heading_coefficients"] = coefficients
 
-    heading = _as_dask(readings["heading"], chunks)
-    sensor = _as_dask(readings["sensor_index"], chunks)
+    heading = as_dask(readings["heading"], chunks)
+    sensor = as_dask(readings["sensor_index"], chunks)
     correction = da.map_blocks(
         htable.block_correction, heading, sensor, models=tuple(models), dtype=np.float64, chunks=chunks
     )
@@ -374,12 +375,12 @@ def level_bins(readings: xr.Dataset, segments: xr.Dataset, chunks: tuple, settin
         left out when ``use_tie_lines`` is false.
     """
     residual = current_residual(readings)
-    arrays = [_as_dask(v, chunks) for v in (residual, readings["heading"], readings["easting"],
+    arrays = [as_dask(v, chunks) for v in (residual, readings["heading"], readings["easting"],
                                              readings["northing"], readings["time"], readings["flags"])]
     blocks = [a.to_delayed().ravel() for a in arrays]
     bounds = np.cumsum((0,) + tuple(chunks[0]))
     starts = np.asarray(segments["start"].values, dtype=np.int64)
-    block_of = np.searchsorted(bounds, starts, side="right") - 1
+    block_of = block_of_segment(segments, chunks)
     t0 = readings["time"].isel({READING_DIM: 0}).values if readings.sizes[READING_DIM] else np.datetime64(0, "ns")
     t_ref = int(np.asarray(t0).astype("datetime64[ns]").astype(np.int64))
     exclude = flag_mask(*settings["exclude_flags"])
@@ -545,22 +546,3 @@ def _log_sensors(context: StageContext, table: pd.DataFrame) -> None:
             "heading: sensor %s (%s): b %.3f nT, c %.3f nT%s",
             row["sensor"], row.get("estimated", row["method"]), row["b_nT"], row["c_nT"], se,
         )
-
-
-def _reading_chunks(readings: xr.Dataset, segments: xr.Dataset, target: int) -> tuple:
-    """Chunks of the readings: those of ``residual``/``total_field``, or whole segments when in memory."""
-    chunks = current_residual(readings).chunks
-    if chunks is not None:
-        return chunks
-    lengths = np.asarray(segments["stop"].values) - np.asarray(segments["start"].values)
-    return (segment_chunks(lengths, target),)
-
-
-def _as_dask(var: xr.DataArray, chunks: tuple) -> da.Array:
-    """The dask array of ``var`` with the given chunks (wrapping in-memory data)."""
-    data = var.data
-    if not isinstance(data, da.Array):
-        return da.from_array(np.asarray(data), chunks=chunks)
-    if data.chunks != chunks:
-        return data.rechunk(chunks)
-    return data

@@ -136,14 +136,13 @@ from lodeline.model import (
 )
 from lodeline.params import Param, validate_table
 
+from ._blocks import as_dask, reading_chunks
 from ._levelling_blocks import (
     TRACK_FIELDS,
-    as_dask,
     block_polynomial,
     compute_tracks,
     map_segment_blocks,
     normalised_time,
-    reading_chunks,
     values_at,
 )
 from ._levelling_crossovers import find_crossovers

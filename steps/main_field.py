@@ -89,10 +89,11 @@ from lodeline.model import (
     StageContext,
     StageResult,
     apply_correction,
-    segment_chunks,
     validate_readings,
 )
 from lodeline.params import Param, ParameterError, validate_table
+
+from ._blocks import as_dask, reading_chunks
 
 from . import _main_field_igrf as igrf
 from . import _main_field_lattice as lattice_mod
@@ -195,8 +196,8 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     validate_readings(readings, segments, where="main_field")
     crs_wkt = _crs_wkt(readings, context)
 
-    chunks = _reading_chunks(readings, segments, context.chunk_readings)
-    coords = {name: _as_dask(readings[name], chunks) for name in ("easting", "northing", "elevation", "time")}
+    chunks = reading_chunks(readings, segments, context.chunk_readings)
+    coords = {name: as_dask(readings[name], chunks) for name in ("easting", "northing", "elevation", "time")}
     bounds = _extent(coords)
     _check_dates(readings, coords, bounds)
 
@@ -327,23 +328,6 @@ def _crs_wkt(readings: xr.Dataset, context: StageContext) -> str:
     if not crs.is_projected:
         raise DataError("main_field: the readings' CRS is not projected: set [survey] crs to a projected CRS in metres")
     return wkt
-
-
-def _reading_chunks(readings: xr.Dataset, segments: xr.Dataset, target: int) -> tuple:
-    """Chunks of the readings: those of ``total_field``, or whole segments when in memory."""
-    chunks = readings["total_field"].chunks
-    if chunks is not None:
-        return chunks
-    lengths = np.asarray(segments["stop"].values) - np.asarray(segments["start"].values)
-    return (segment_chunks(lengths, target),)
-
-
-def _as_dask(var: xr.DataArray, chunks: tuple) -> da.Array:
-    """The dask array of ``var`` with the given chunks (wrapping in-memory data)."""
-    data = var.data
-    if not isinstance(data, da.Array):
-        return da.from_array(np.asarray(data), chunks=chunks)
-    return data if data.chunks == chunks else data.rechunk(chunks)
 
 
 _NAT = np.iinfo(np.int64).min

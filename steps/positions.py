@@ -102,11 +102,11 @@ from lodeline.model import (
     StageResult,
     current_residual,
     flag_mask,
-    segment_chunks,
     validate_readings,
 )
 from lodeline.params import Param, ParameterError, validate_table
 
+from ._blocks import as_dask, block_of_segment, reading_chunks
 from ._positions_lag import PAIR_COLUMNS, block_tracks, combine, find_pairs, pair_lag
 from ._positions_track import OUT_COLUMNS, block_positions, seconds
 
@@ -260,7 +260,7 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     names = [str(s) for s in readings.attrs["sensor_names"]]
     table = sensor_table(settings, names, context)
 
-    chunks = _reading_chunks(readings, segments, context.chunk_readings)
+    chunks = reading_chunks(readings, segments, context.chunk_readings)
     seg_sensor = np.asarray(segments["sensor_index"].values, dtype=np.int64)
     seg_line = np.asarray(segments["line_index"].values, dtype=np.int64)
 
@@ -378,33 +378,9 @@ STAGE = Stage(
 # --------------------------------------------------------------------------
 
 
-def _reading_chunks(readings: xr.Dataset, segments: xr.Dataset, target: int) -> tuple:
-    """Chunks of the readings: those of ``total_field``, or whole segments when in memory."""
-    chunks = readings["total_field"].chunks
-    if chunks is not None:
-        return chunks
-    lengths = np.asarray(segments["stop"].values) - np.asarray(segments["start"].values)
-    return (segment_chunks(lengths, target),)
-
-
-def _as_dask(var: xr.DataArray, chunks: tuple) -> da.Array:
-    """The dask array of ``var`` with the given chunks (wrapping in-memory data)."""
-    data = var.data
-    if not isinstance(data, da.Array):
-        return da.from_array(np.asarray(data), chunks=chunks)
-    return data if data.chunks == chunks else data.rechunk(chunks)
-
-
-def _block_of_segment(segments: xr.Dataset, chunks: tuple) -> np.ndarray:
-    """Index of the dask block holding each segment."""
-    bounds = np.cumsum((0,) + tuple(chunks[0]))
-    starts = np.asarray(segments["start"].values, dtype=np.int64)
-    return np.searchsorted(bounds, starts, side="right") - 1
-
-
 def _per_block(values: np.ndarray, segments: xr.Dataset, chunks: tuple) -> da.Array:
     """A per-segment array as a dask array with one block per reading block."""
-    block = _block_of_segment(segments, chunks)
+    block = block_of_segment(segments, chunks)
     counts = np.bincount(block, minlength=len(chunks[0])) if block.size else np.zeros(len(chunks[0]), int)
     return da.from_array(np.asarray(values), chunks=(tuple(int(c) for c in counts),))
 
@@ -413,12 +389,12 @@ def _relative_starts(segments: xr.Dataset, chunks: tuple) -> np.ndarray:
     """Segment starts relative to their block."""
     bounds = np.cumsum((0,) + tuple(chunks[0]))
     starts = np.asarray(segments["start"].values, dtype=np.int64)
-    return starts - bounds[_block_of_segment(segments, chunks)] if starts.size else starts
+    return starts - bounds[block_of_segment(segments, chunks)] if starts.size else starts
 
 
 def _positions(readings, segments, chunks, per_seg: dict, window_m: float) -> da.Array:
     """Lazy (readings, 5) array of :data:`OUT_COLUMNS`."""
-    arrays = [_as_dask(readings[v], chunks) for v in ("time", "easting", "northing", "elevation")]
+    arrays = [as_dask(readings[v], chunks) for v in ("time", "easting", "northing", "elevation")]
     seg_arrays = [_per_block(_relative_starts(segments, chunks), segments, chunks)]
     keys = ("across_m", "along_m", "up_m", "layback_m", "lag_s")
     seg_arrays += [_per_block(per_seg[k], segments, chunks) for k in keys]
@@ -434,9 +410,9 @@ def _assemble(readings: xr.Dataset, out: da.Array) -> xr.Dataset:
     chunks = out.chunks[:1]
     east, north = readings["easting"], readings["northing"]
     coords = {
-        "antenna_easting": (READING_DIM, _as_dask(east, chunks),
+        "antenna_easting": (READING_DIM, as_dask(east, chunks),
                             {**east.attrs, "long_name": "GNSS antenna easting at the time stamp, survey CRS"}),
-        "antenna_northing": (READING_DIM, _as_dask(north, chunks),
+        "antenna_northing": (READING_DIM, as_dask(north, chunks),
                              {**north.attrs, "long_name": "GNSS antenna northing at the time stamp, survey CRS"}),
         "easting": (READING_DIM, col["easting"], {
             **east.attrs, **_UNITS_M,
@@ -521,11 +497,11 @@ def _tracks(readings, segments, chunks, table, names, seg_group, window_m) -> np
     """Decimated sensor tracks (no lag) of the segments with a group, block by block."""
     seg_sensor = np.asarray(segments["sensor_index"].values, dtype=np.int64)
     starts = _relative_starts(segments, chunks)
-    block = _block_of_segment(segments, chunks)
+    block = block_of_segment(segments, chunks)
     ids = np.where(seg_group >= 0, np.arange(seg_sensor.size), -1)
     per = {k: np.array([table[names[s]][k] for s in seg_sensor], dtype=float)
            for k in ("across_m", "along_m", "layback_m")}
-    blocks = [_as_dask(readings[v], chunks).to_delayed().ravel() for v in ("time", "easting", "northing")]
+    blocks = [as_dask(readings[v], chunks).to_delayed().ravel() for v in ("time", "easting", "northing")]
     tasks = []
     for i, (t, e, n) in enumerate(zip(*blocks)):
         mine = np.flatnonzero(block == i)

@@ -171,10 +171,11 @@ from lodeline.model import (
     StageContext,
     StageResult,
     flag_mask,
-    segment_chunks,
     validate_readings,
 )
 from lodeline.params import Param, ParameterError, validate_table
+
+from ._blocks import as_dask, block_of_segment, block_starts, reading_chunks, segment_ids
 
 __all__ = [
     "PARAMS",
@@ -310,16 +311,16 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     readings, segments = upstream["readings"], upstream["segments"]
     validate_readings(readings, segments, where="spikes")
 
-    chunks = _reading_chunks(readings, segments, context.chunk_readings)
-    field = _as_dask(readings["total_field"], chunks)
-    time = _as_dask(readings["time"], chunks)
-    flags = _as_dask(readings["flags"], chunks)
-    starts = _block_starts(segments, chunks)
+    chunks = reading_chunks(readings, segments, context.chunk_readings)
+    field = as_dask(readings["total_field"], chunks)
+    time = as_dask(readings["time"], chunks)
+    flags = as_dask(readings["flags"], chunks)
+    starts = block_starts(segments, chunks)
 
     new_flags = da.map_blocks(
         block_flags, field, time, flags, starts, dtype=np.uint32, chunks=chunks, **settings
     )
-    counts = np.bincount(_block_of_segment(segments, chunks), minlength=len(chunks[0]))
+    counts = np.bincount(block_of_segment(segments, chunks), minlength=len(chunks[0]))
     stats = da.map_blocks(
         block_stats,
         field,
@@ -374,47 +375,6 @@ STAGE = Stage(
 
 
 # --------------------------------------------------------------------------
-# Dask plumbing
-# --------------------------------------------------------------------------
-
-
-def _reading_chunks(readings: xr.Dataset, segments: xr.Dataset, target: int) -> tuple:
-    """Chunks of the readings: those of ``total_field``, or whole segments when in memory."""
-    chunks = readings["total_field"].chunks
-    if chunks is not None:
-        return chunks
-    lengths = np.asarray(segments["stop"].values) - np.asarray(segments["start"].values)
-    return (segment_chunks(lengths, target),)
-
-
-def _as_dask(var: xr.DataArray, chunks: tuple) -> da.Array:
-    """The dask array of ``var`` with the given chunks (wrapping in-memory data)."""
-    data = var.data
-    if not isinstance(data, da.Array):
-        return da.from_array(np.asarray(data), chunks=chunks)
-    if data.chunks != chunks:
-        return data.rechunk(chunks)
-    return data
-
-
-def _block_of_segment(segments: xr.Dataset, chunks: tuple) -> np.ndarray:
-    """Index of the dask block holding each segment."""
-    bounds = np.cumsum((0,) + tuple(chunks[0]))
-    starts = np.asarray(segments["start"].values, dtype=np.int64)
-    return np.searchsorted(bounds, starts, side="right") - 1
-
-
-def _block_starts(segments: xr.Dataset, chunks: tuple) -> da.Array:
-    """Segment starts relative to their block, as a dask array with one block per reading block."""
-    bounds = np.cumsum((0,) + tuple(chunks[0]))
-    starts = np.asarray(segments["start"].values, dtype=np.int64)
-    block = _block_of_segment(segments, chunks)
-    relative = starts - bounds[block] if starts.size else starts
-    counts = np.bincount(block, minlength=len(chunks[0])) if starts.size else np.zeros(len(chunks[0]), int)
-    return da.from_array(relative, chunks=(tuple(int(c) for c in counts),))
-
-
-# --------------------------------------------------------------------------
 # Block functions (one dask block = whole segments)
 # --------------------------------------------------------------------------
 
@@ -457,7 +417,7 @@ def block_flags(
     out = np.array(flags, dtype=np.uint32, copy=True)
     if n == 0:
         return out
-    seg_id = _segment_ids(starts, n)
+    seg_id = segment_ids(starts, n, stage="spikes")
 
     dropout = ~np.isfinite(x) | stuck_mask(x, seg_id, stuck_samples)
     out[dropout] |= _DROPOUT
@@ -509,7 +469,7 @@ def block_stats(
     if nseg == 0:
         return np.zeros(0)
     starts = np.asarray(starts, dtype=np.int64)
-    seg_id = _segment_ids(starts, n)
+    seg_id = segment_ids(starts, n, stage="spikes")
     is_gap = (flags & _GAP) != 0
     step_s = np.zeros(n)
     step_s[1:] = np.diff(np.asarray(time).astype("datetime64[ns]").astype(np.int64)) / 1e9
@@ -529,14 +489,6 @@ def block_stats(
     table[:, 7] = np.maximum.reduceat(gap_s, starts)
     table[:, 8] = _segment_noise(x, seg_id, flags, nseg)
     return table.ravel()
-
-
-def _segment_ids(starts: np.ndarray, n: int) -> np.ndarray:
-    """Segment number (within the block) of every reading."""
-    starts = np.asarray(starts, dtype=np.int64)
-    if starts.size == 0 or starts[0] != 0:
-        raise ValueError("spikes: a dask block does not start on a segment start")
-    return np.repeat(np.arange(starts.size), np.diff(np.append(starts, n)))
 
 
 def _segment_noise(x: np.ndarray, seg_id: np.ndarray, flags: np.ndarray, nseg: int) -> np.ndarray:
