@@ -25,6 +25,7 @@ from pathlib import Path
 
 import dask
 import numpy as np
+import pandas as pd
 
 from . import __version__
 from .config import ConfigError, SurveyConfig, expand_files
@@ -221,12 +222,16 @@ def stage_status(config: SurveyConfig, stages: list[Stage] | None = None) -> lis
 # Data loading and writing
 # ---------------------------------------------------------------------------
 def load_stage_data(folder: Path, chunk_readings: int) -> dict:
-    """Open a stage output folder lazily: every ``*.zarr`` store as a Dataset.
+    """Open a stage output folder: every ``*.zarr`` store as a lazy Dataset and
+    every ``*.csv`` table as a pandas DataFrame, by file name without suffix.
 
     Readings are rechunked so that chunk boundaries fall on segment
     boundaries (the convention of :mod:`lodeline.model`).
     """
     out = {p.stem: RunStore.open_dataset(p) for p in sorted(folder.glob("*.zarr"))}
+    for path in sorted(folder.glob("*.csv")):
+        # Small tables (targets, picks, crossovers...) come back as DataFrames.
+        out.setdefault(path.stem, pd.read_csv(path))
     if "readings" in out and "segments" in out:
         seg = out["segments"].load()
         out["segments"] = seg
