@@ -27,14 +27,14 @@ def write_geotiff(grid: xr.Dataset, name: str, path: Path) -> Path:
     """Write grid variable ``name`` to a single-band GeoTIFF at ``path``."""
     import rasterio
     from rasterio.crs import CRS
-    from rasterio.transform import from_origin
+    from rasterio.transform import Affine
     from rasterio.windows import Window
 
     var = grid[name]
     e = grid["easting"].values
     n = grid["northing"].values
     cell = float(e[1] - e[0]) if e.size > 1 else float(n[1] - n[0])
-    transform = from_origin(e[0] - cell / 2, n[-1] + cell / 2, cell, cell)
+    transform = Affine(cell, 0.0, e[0] - cell / 2, 0.0, -cell, n[-1] + cell / 2)
     ny, nx = var.shape
     data = var.data
     step = data.chunks[0][0] if hasattr(data, "chunks") and data.chunks else ny

@@ -129,9 +129,9 @@ def _across_pass(node, off, vals, n_nodes, reach_m, min_sep_m, across):
     key = node.astype(np.float64) * width + off
     order = np.argsort(key, kind="stable")
     key, node, off, vals = key[order], node[order], off[order], vals[order]
-    present = np.unique(node)
-    gs = np.searchsorted(node, present, side="left")
-    ge = np.searchsorted(node, present, side="right")
+    gs = np.flatnonzero(np.concatenate([[True], node[1:] != node[:-1]]))
+    present = node[gs]
+    ge = np.concatenate([gs[1:], [node.size]])
     p = np.searchsorted(key, present.astype(np.float64) * width, side="left")
     i0, i1, i2, i3 = p - 2, p - 1, p, p + 1
     h1_ok = i1 >= gs
@@ -206,7 +206,7 @@ def grid_tile(
     track : ndarray of int
         Track identifier of each reading.
     node_e, node_n : ndarray of float
-        Grid node coordinates of the tile (1-D axes), m.
+        Coordinates of the nodes to grid (any set of points), m.
     angle_deg : float
         Direction of the survey lines, degrees counter-clockwise from the
         easting axis.
@@ -221,12 +221,11 @@ def grid_tile(
 
     Returns
     -------
-    ndarray, shape (k, len(node_n), len(node_e))
+    ndarray, shape (k, len(node_e))
         Gridded values; NaN where no run is within reach.
     """
     k = values.shape[1]
-    ge, gn = np.meshgrid(node_e, node_n)
-    ge, gn = ge.ravel(), gn.ravel()
+    ge, gn = np.asarray(node_e, dtype=np.float64), np.asarray(node_n, dtype=np.float64)
     out = np.full((ge.size, k), np.nan)
     if easting.size >= 2:
         theta = np.deg2rad(angle_deg)
@@ -249,4 +248,4 @@ def grid_tile(
             nc = -ge[todo] * uy + gn[todo] * ux
             node, off, vals = _along_pass(a, c, values, starts, stops, na, nc, reach_m)
             out[todo] = _across_pass(node, off, vals, todo.size, reach_m, min_sep_m, across)
-    return out.T.reshape(k, node_n.size, node_e.size)
+    return out.T

@@ -99,23 +99,51 @@ def _tile(node_e, node_n, halo, blank, grid_kw, *chunks):
     n = np.concatenate([p[1] for p in parts])
     v = np.concatenate([p[2] for p in parts])
     t = np.concatenate([p[3] for p in parts])
-    mask = blank_mask(e, n, node_e, node_n, blank)
-    if not mask.any():
-        return out
     kw = {key: val for key, val in grid_kw.items() if key != "k"}
-    out = lines.grid_tile(e, n, v, t, node_e, node_n, **kw)
-    out[:, ~mask] = np.nan
+    mask = blank_mask(e, n, node_e, node_n, blank)
+    if mask.any():
+        jj, ii = np.nonzero(mask)
+        out[:, jj, ii] = lines.grid_tile(e, n, v, t, node_e[ii], node_n[jj], **kw)
     return out
 
 
-def blank_mask(e, n, node_e, node_n, blank: float) -> np.ndarray:
-    """True at nodes within ``blank`` m of a reading (shape (ny, nx))."""
+def blank_mask(e, n, node_e, node_n, blank: float, where=None) -> np.ndarray:
+    """True at nodes within ``blank`` m of a reading (shape (ny, nx)).
+
+    Only the nodes where ``where`` is true (all when None) are tested; the
+    others are false.
+    """
+    shape = (node_n.size, node_e.size)
+    mask = np.zeros(shape, dtype=bool)
     if e.size == 0:
-        return np.zeros((node_n.size, node_e.size), dtype=bool)
+        return mask
+    # Pre-screen on a coarse lattice of cells ``blank`` wide: a node can be
+    # within ``blank`` of a reading only if its coarse cell or a neighbour
+    # holds one (saves the tree query on empty parts of a tile).
+    e0, n0 = node_e[0] - blank, node_n[0] - blank
+    ci = np.floor((e - e0) / blank).astype(np.int64)
+    cj = np.floor((n - n0) / blank).astype(np.int64)
+    nci = int(np.floor((node_e[-1] - e0) / blank)) + 2
+    ncj = int(np.floor((node_n[-1] - n0) / blank)) + 2
+    inside = (ci >= -1) & (ci <= nci) & (cj >= -1) & (cj <= ncj)
+    occupied = np.zeros((ncj + 3, nci + 3), dtype=bool)
+    occupied[cj[inside] + 1, ci[inside] + 1] = True
+    near = occupied.copy()
+    for dj in (-1, 0, 1):
+        for di in (-1, 0, 1):
+            near[1:-1, 1:-1] |= occupied[1 + dj : ncj + 2 + dj, 1 + di : nci + 2 + di]
+    node_ci = np.floor((node_e - e0) / blank).astype(np.int64) + 1
+    node_cj = np.floor((node_n - n0) / blank).astype(np.int64) + 1
+    candidate = near[node_cj[:, None], node_ci[None, :]]
+    if where is not None:
+        candidate &= where
+    jj, ii = np.nonzero(candidate)
     tree = cKDTree(np.column_stack([e, n]))
-    ge, gn = np.meshgrid(node_e, node_n)
-    dist, _ = tree.query(np.column_stack([ge.ravel(), gn.ravel()]), k=1, distance_upper_bound=blank)
-    return (dist <= blank).reshape(node_n.size, node_e.size)
+    if jj.size == 0:
+        return mask
+    dist, _ = tree.query(np.column_stack([node_e[ii], node_n[jj]]), k=1, distance_upper_bound=blank)
+    mask[jj, ii] = dist <= blank
+    return mask
 
 
 def grid_lines(chunks, boxes, node_e, node_n, tile_cells: int, halo: float, blank: float, grid_kw: dict):

@@ -28,7 +28,7 @@ Defaults from the data
     The across-track spacing of the tracks is the median gap between the
     sorted across-track positions of the survey segments' mid-points (from
     each segment's first and last reading). ``cell_size_m`` defaults to a
-    quarter of it (common practice is 1/4 to 1/5 of the line spacing, no
+    quarter of it, rounded to two significant figures (common practice is 1/4 to 1/5 of the line spacing, no
     published source) and ``blank_distance_m`` to 1.5 times it (one and a
     half track spacings, so that cells between tracks are filled and cells
     more than a track spacing and a half beyond the outer tracks are not;
@@ -82,13 +82,18 @@ PARAMS = (
           "default 1.5 times the across-track spacing.", minimum=0, exclusive_minimum=True, optional=True),
     Param("tile_cells", 512, "Grid nodes per tile side (one dask task per tile).", kind=int, minimum=8),
     Param("variables", ["residual"], "Reading variables to grid.", kind=list, item_kind=str, minimum=1),
-    Param("exclude_flags", list(DEFAULT_EXCLUDE) + ["base_station_gap"],
+    Param("exclude_flags", list(dict.fromkeys(DEFAULT_EXCLUDE + ("base_station_gap",))),
           "Readings with any of these flags are left out.", kind=list, choices=tuple(FLAGS)),
     Param("include_tie_lines", True, "Grid the tie lines too (they fill where the survey lines leave gaps).",
           kind=bool),
     Param("geotiff", True, "Write one GeoTIFF per variable.", kind=bool),
     Param("quicklook", True, "Write one quick-look PNG per variable.", kind=bool),
 )
+
+
+def _two_figures(x: float) -> float:
+    """``x`` rounded to two significant figures (a round default, e.g. 0.2499 -> 0.25)."""
+    return float(f"{x:.2g}")
 
 
 def _keep_lines(readings: xr.Dataset, include_ties: bool) -> np.ndarray:
@@ -120,8 +125,8 @@ def grid_readings(readings: xr.Dataset, segments: xr.Dataset, params: dict, log=
     blank = params["blank_distance_m"]
     if (cell is None or blank is None) and not np.isfinite(spacing):
         raise DataError("gridding: cannot find the across-track spacing of the tracks; set cell_size_m and blank_distance_m")
-    cell = float(cell) if cell is not None else spacing / 4.0
-    blank = float(blank) if blank is not None else 1.5 * spacing
+    cell = float(cell) if cell is not None else _two_figures(spacing / 4.0)
+    blank = float(blank) if blank is not None else _two_figures(1.5 * spacing)
     reach = 2.0 * blank
     max_gap = blank
     halo = reach + max_gap + 2.0 * cell
@@ -189,7 +194,7 @@ def run(data: dict, params: dict, context) -> StageResult:
     readings, segments = upstream["readings"], upstream["segments"]
     t0 = time.perf_counter()
     grid, info = grid_readings(readings, segments, params, context.log)
-    grid = grid.persist() if info["cells"] <= 50_000_000 else grid
+    grid = grid.persist() if info["cells"] * len(params["variables"]) <= 20_000_000 else grid
     seconds = time.perf_counter() - t0
     first = grid[params["variables"][0]]
     filled = int(np.isfinite(first.data).sum().compute())

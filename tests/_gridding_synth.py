@@ -3,7 +3,7 @@
 Parallel straight tracks, alternate directions, dense samples along each
 track, a field of closed-form point dipoles computed with harmonica
 (``harmonica.dipole_magnetic``, the dipole field of Blakely 1995, *Potential
-Theory in Gravity and Magnetic Applications*, eq. 4.13) projected on the
+Theory in Gravity and Magnetic Applications*, ch. 4) projected on the
 main-field direction (total-field anomaly), plus a smooth regional.
 """
 
