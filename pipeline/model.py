@@ -182,7 +182,7 @@ def apply_correction(readings: xr.Dataset, name: str, correction, long_name: str
     out = readings.assign({name: ((READING_DIM,), data, var_attrs)})
     residual = previous.data - data
     return out.assign(
-        residual=((READING_DIM,), residual, {"units": "nT", "long_name": "total field less the corrections applied so far"})
+        residual=((READING_DIM,), residual, {"units": "nT", "long_name": "residual anomaly (total field less the corrections applied so far)"})
     )
 
 

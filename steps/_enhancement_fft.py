@@ -61,6 +61,8 @@ Miller, H. G. & Singh, V. (1994). Potential field tilt - a new concept for
     213-217.
 Roest, W. R., Verhoef, J. & Pilkington, M. (1992). Magnetic interpretation
     using the 3-D analytic signal. Geophysics 57(1), 116-125.
+Trefethen, L. N. (2000). Spectral Methods in MATLAB, ch. 3 (the Nyquist
+    coefficient of an odd derivative set to zero). SIAM. (From memory.)
 """
 
 from __future__ import annotations
@@ -174,10 +176,22 @@ def pad_taper(values: np.ndarray, pad: tuple[int, int]) -> tuple[np.ndarray, tup
 
 
 def wavenumbers(shape: tuple[int, int], spacing: tuple[float, float]):
-    """Wavenumbers (rad/m) of a real 2-D FFT of ``shape`` (ny, nx) with signed ``spacing`` (dn, de), m."""
+    """Wavenumbers (rad/m) of a real 2-D FFT of ``shape`` (ny, nx) with signed ``spacing`` (dn, de), m.
+
+    Returns ``ke``, ``kn`` (for the odd, imaginary parts of the operators:
+    zero at the Nyquist wavenumber of an even length, whose sign is
+    ambiguous, as is usual for spectral first derivatives, Trefethen 2000)
+    and ``|k|`` (from the full wavenumbers).
+    """
     kn = 2 * np.pi * np.fft.fftfreq(shape[0], d=spacing[0])[:, None]
     ke = 2 * np.pi * np.fft.rfftfreq(shape[1], d=abs(spacing[1]))[None, :] * np.sign(spacing[1])
     k = np.sqrt(ke**2 + kn**2)
+    if shape[0] % 2 == 0:
+        kn = kn.copy()
+        kn[shape[0] // 2] = 0.0
+    if shape[1] % 2 == 0:
+        ke = ke.copy()
+        ke[:, -1] = 0.0
     return ke, kn, k
 
 

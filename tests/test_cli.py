@@ -225,3 +225,27 @@ def test_demo_corrections_summary_and_levelling(demo_run):
     # The demo's sensor lag is 0.30 s; the estimate must cover it within 3 sigma.
     pos = stages["positions"]["summary"]
     assert abs(pos["lag_estimate_s"] - 0.30) <= 3 * pos["lag_uncertainty_s"]
+
+
+def test_demo_grids_open_as_geotiffs(demo_run):
+    """The residual, total gradient amplitude and vertical derivative GeoTIFFs
+    carry the survey CRS and a geotransform that puts each cell where the grid
+    store has it; a quick-look PNG sits beside each."""
+    rasterio = pytest.importorskip("rasterio")
+    from pyproj import CRS
+
+    survey, run = demo_run
+    grid = xr.open_zarr(run / "gridding" / "grid.zarr")
+    cell = float(grid.easting[1] - grid.easting[0])
+    west = float(grid.easting.min()) - cell / 2
+    north = float(grid.northing.max()) + cell / 2
+    for folder, name in [("gridding", "grid_residual"), ("enhancement", "total_gradient_amplitude"), ("enhancement", "derivative_upward")]:
+        with rasterio.open(run / folder / f"{name}.tif") as tif:
+            assert CRS.from_wkt(tif.crs.to_wkt()) == CRS.from_epsg(32631), name
+            t = tif.transform
+            # Tolerance: a millionth of a cell, far below any positioning figure.
+            assert abs(t.a - cell) < 1e-6 * cell and abs(t.e + cell) < 1e-6 * cell and t.b == 0 and t.d == 0, name
+            assert abs(t.c - west) < 1e-6 * cell and abs(t.f - north) < 1e-6 * cell, name
+            assert tif.width == grid.sizes["easting"] and tif.height == grid.sizes["northing"]
+        png = run / folder / f"{name}.png"
+        assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n", name

@@ -1,4 +1,4 @@
-"""Tests of the gridding stage (lodeline.steps._wip_gridding).
+"""Tests of the gridding stage (lodeline.steps.gridding).
 
 Outside references: the dipole field of harmonica.dipole_magnetic (Blakely
 1995, Potential Theory in Gravity and Magnetic Applications) as the
@@ -20,7 +20,7 @@ import _gridding_synth as synth
 from lodeline.model import StageContext, flag_mask, validate_grid
 from lodeline.params import ParameterError, validate_table
 from lodeline.progress import make_progress
-from lodeline.steps import _wip_gridding as gridding
+from lodeline.steps import gridding as gridding
 
 
 def params(**over):
