@@ -20,7 +20,7 @@ import xarray as xr
 from lodeline.model import DataError, StageContext, flag_attrs, flag_mask, segment_chunks, segments_dataset
 from lodeline.params import ParameterError
 from lodeline.progress import make_progress
-from lodeline.steps import _wip_dipole_fit as stage
+from lodeline.steps import dipole_fit as stage
 from lodeline.steps._dipole_model import field_unit_vector
 from lodeline.steps._dipole_rows import fit_group
 

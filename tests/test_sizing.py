@@ -22,7 +22,7 @@ from scipy.integrate import quad
 from lodeline.model import DataError, StageContext
 from lodeline.params import ParameterError, validate_table
 from lodeline.progress import make_progress
-from lodeline.steps import _wip_sizing as stage
+from lodeline.steps import sizing as stage
 from lodeline.steps._dipole_mass import prolate_demagnetising_factor
 
 ROOT = Path(__file__).resolve().parents[1]
