@@ -148,8 +148,13 @@ def grid_readings(readings: xr.Dataset, segments: xr.Dataset, params: dict, log=
                         params["method"], used)
         stack = tiles.grid_delaunay(chunks, node_e, node_n, tc, blank, params["method"], k)
     attrs = {key: readings.attrs[key] for key in COPIED_ATTRS if key in readings.attrs}
+    accepted = (readings["flags"] & np.uint32(exclude)) == 0
+    # The grid is treated as a level surface at the mean sensor elevation (m, up);
+    # later stages (Euler deconvolution) measure depths from it.
+    grid_elevation = float(readings["elevation"].where(accepted).mean().compute())
     attrs.update(crs_wkt=readings.attrs["crs_wkt"], Conventions="CF-1.11",
-                 gridding_method=params["method"], cell_size_m=cell, blank_distance_m=blank)
+                 gridding_method=params["method"], cell_size_m=cell, blank_distance_m=blank,
+                 grid_elevation_m=grid_elevation)
     data_vars = {}
     for i, name in enumerate(params["variables"]):
         src = readings[name].attrs
