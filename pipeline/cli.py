@@ -158,7 +158,9 @@ def _cmd_stages(args) -> int:
 def _record_traceback(args) -> Path | None:
     """Append the current traceback to the run log when the run folder is known."""
     try:
-        config = load_config(args.survey, [])
+        from .runner import discover_stages
+
+        config = load_config(args.survey, [], [s.name for s in discover_stages()])
     except Exception:  # noqa: BLE001 - best effort only
         return None
     folder = config.run_folder

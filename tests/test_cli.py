@@ -261,3 +261,28 @@ def test_demo_grids_open_as_geotiffs(demo_run):
             assert tif.width == grid.sizes["easting"] and tif.height == grid.sizes["northing"]
         png = run / folder / f"{name}.png"
         assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n", name
+
+
+def test_internal_error_is_one_line_with_traceback_in_log(tmp_path, capsys, monkeypatch):
+    """A bug inside a stage (not bad input) gives exit 1, one line on the
+    terminal, and the traceback in the run log."""
+    import dataclasses
+
+    import lodeline.runner as runner
+
+    def broken(data, params, context):
+        raise ZeroDivisionError("simulated bug")
+
+    real = runner.discover_stages
+
+    def patched():
+        return [dataclasses.replace(s, run=broken) if s.name == "spikes" else s for s in real()]
+
+    monkeypatch.setattr(runner, "discover_stages", patched)
+    survey = _survey(tmp_path)
+    assert main(["run", str(survey), "--quiet", "--until", "spikes"]) == 1
+    err = capsys.readouterr().err
+    assert "internal error: ZeroDivisionError: simulated bug" in err and len(err.strip().splitlines()) == 1
+    log = (tmp_path / "run" / "run.log").read_text()
+    assert "Traceback" in log and "simulated bug" in log
+    assert not list((tmp_path / "run" / "store").glob("spikes-*"))
