@@ -312,8 +312,9 @@ class _ConsoleHandler(logging.StreamHandler):
 
 
 def _setup_logging(store: RunStore, quiet: bool) -> list[logging.Handler]:
-    log.setLevel(logging.INFO)
+    log.setLevel(logging.DEBUG)
     file_handler = logging.FileHandler(store.log_path, encoding="utf-8")
+    file_handler.setLevel(logging.DEBUG)
     file_handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s", "%Y-%m-%dT%H:%M:%S"))
     console = _ConsoleHandler()
     console.setLevel(logging.WARNING if quiet else logging.INFO)
@@ -569,5 +570,6 @@ def _log_stage(name: str, record: dict) -> None:
             )
     for key, value in (record.get("summary") or {}).items():
         if isinstance(value, (int, float, str)):
-            log.info("[%s] %s: %s", name, key, value)
+            # Every figure goes to the run log; the terminal shows the lines above.
+            log.debug("[%s] %s: %s", name, key, value)
     log.info("[%s] done in %.1f s (cpu %.1f s)", name, record["wall_s"], record["cpu_s"])
