@@ -21,36 +21,19 @@ import xarray as xr
 from pyproj import CRS
 from scipy import ndimage
 
+import _dipole
 from lodeline.model import StageContext, validate_grid
 from lodeline.progress import make_progress
 
 CRS_WKT = CRS.from_epsg(32631).to_wkt()
 FIELD = (68.7, 2.0)  # inclination, grid declination, degrees
-MU0_4PI = 1.0e-7  # T m / A
 ORIGIN = (500_000.0, 5_700_000.0)
 
 
-def unit_enu(inclination_deg, declination_deg):
-    """Unit vector (east, north, up) of a direction given by inclination (down) and declination."""
-    inc, dec = np.deg2rad(inclination_deg), np.deg2rad(declination_deg)
-    return np.array([np.cos(inc) * np.sin(dec), np.cos(inc) * np.cos(dec), -np.sin(inc)])
-
-
 def dipole(e, n, u, source, moment_Am2, f_dir=FIELD):
-    """Total-field anomaly (nT) of an induced point dipole and its gradient [d/de, d/dn, d/du] (nT/m).
-
-    T = C (3 (m.r)(f.r) / r**5 - f.m / r**3), C = 1e9 mu0 / (4 pi) (Blakely 1995, ch. 4);
-    dT/dx_j = C (3 (m_j (f.r) + f_j (m.r) + (f.m) r_j) / r**5 - 15 (m.r)(f.r) r_j / r**7).
-    """
-    f = unit_enu(*f_dir)
-    m = moment_Am2 * f
-    r = np.stack([e - source[0], n - source[1], u - source[2]])
-    rr = np.sqrt((r**2).sum(axis=0))
-    mr, fr, fm = np.tensordot(m, r, 1), np.tensordot(f, r, 1), f @ m
-    c = MU0_4PI * 1e9
-    total = c * (3 * mr * fr / rr**5 - fm / rr**3)
-    grad = [c * (3 * (m[j] * fr + mr * f[j] + fm * r[j]) / rr**5 - 15 * mr * fr * r[j] / rr**7) for j in range(3)]
-    return total, grad
+    """Total-field anomaly (nT) of an induced point dipole and its gradient [d/de, d/dn, d/du] (nT/m)
+    (closed form of Blakely 1995, ch. 4: see tests/_dipole.py)."""
+    return _dipole.dipole(e, n, u, source, moment_Am2, f_dir, f_dir)
 
 
 def lattice(ny, nx, spacing):

@@ -25,7 +25,8 @@ from lodeline.model import DataError
 from lodeline.params import ParameterError
 from lodeline.steps import picking as pk
 
-from _picking_synth import ORIGIN, context, dipole, enhanced_grid, lattice, unit_enu, FIELD
+from _dipole import unit_enu
+from _picking_synth import ORIGIN, context, dipole, enhanced_grid, lattice, FIELD
 
 pytestmark = pytest.mark.filterwarnings("ignore::FutureWarning")
 
