@@ -241,17 +241,6 @@ def load_stage_data(folder: Path, chunk_readings: int) -> dict:
     return out
 
 
-def _flag_counts(readings) -> dict:
-    flags = readings["flags"].data
-    names = list(FLAGS)
-    sums = [((flags >> np.uint32(FLAGS[n][0])) & np.uint32(1)).sum() for n in names]
-    any_flag = (flags != 0).sum()
-    values = dask.compute(*sums, any_flag)
-    counts = {n: int(v) for n, v in zip(names, values[:-1]) if int(v)}
-    counts["any"] = int(values[-1])
-    return counts
-
-
 def _write_outputs(result: StageResult, tmp: Path, progress_enabled: bool) -> None:
     for name, ds in result.datasets.items():
         with dask_progress(progress_enabled, f"writing {name}"):
@@ -475,7 +464,7 @@ def _run_stage(plan: StagePlan, store: RunStore, config: SurveyConfig, progress_
             elif key.startswith("grid"):
                 validate_grid(ds, where=f"stage {name}")
         _write_outputs(result, tmp, progress_enabled)
-        ledger = _ledger(name, data, result, tmp, config.run["chunk_readings"])
+        ledger = _ledger(name, data, result, tmp)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
@@ -501,14 +490,18 @@ def _run_stage(plan: StagePlan, store: RunStore, config: SurveyConfig, progress_
     return record
 
 
-def _ledger(name: str, data: dict, result: StageResult, tmp: Path, chunk_readings: int) -> dict:
-    """Reading counts of a stage; checks that readings in = out + rejected."""
+def _ledger(name: str, data: dict, result: StageResult, tmp: Path) -> dict:
+    """Reading counts of a stage; checks that readings in = out + rejected.
+
+    Flag counts, newly set flags and the range and RMS of each correction
+    added are reduced from the written store in one pass.
+    """
     if "readings" not in result.datasets:
         return {}
+    ups = [d["readings"] for d in data.values() if "readings" in d]
     if result.readings_in is not None:
         readings_in = int(result.readings_in)
     else:
-        ups = [d["readings"] for d in data.values() if "readings" in d]
         readings_in = int(ups[0].sizes[READING_DIM]) if ups else 0
     written = RunStore.open_dataset(tmp / "readings.zarr")
     readings_out = int(written.sizes[READING_DIM])
@@ -518,38 +511,45 @@ def _ledger(name: str, data: dict, result: StageResult, tmp: Path, chunk_reading
             f"stage {name}: reading counts do not add up: {readings_in} in, {readings_out} out, "
             f"{sum(rejected.values())} rejected"
         )
-    ups = [d["readings"] for d in data.values() if "readings" in d]
-    before = set(ups[0].data_vars) if ups else set()
-    return {
-        "readings_in": readings_in,
-        "readings_out": readings_out,
-        "rejected": rejected,
-        "flagged": _flag_counts(written) if readings_out else {"any": 0},
-        "new_flags": _new_flag_counts(written, ups[0]) if ups and readings_out == readings_in else {},
-        "removed": _removed(written, before) if readings_out else {},
+    ledger = {"readings_in": readings_in, "readings_out": readings_out, "rejected": rejected,
+              "flagged": {"any": 0}, "new_flags": {}, "removed": {}}
+    if not readings_out:
+        return ledger
+    lazy = _ledger_reductions(written, ups[0] if ups and readings_out == readings_in else None,
+                              set(ups[0].data_vars) if ups else set())
+    (values,) = dask.compute(lazy)
+    ledger["flagged"] = {n: int(v) for n, v in values["flagged"].items() if int(v)}
+    ledger["flagged"]["any"] = int(values["any"])
+    ledger["new_flags"] = {n: int(v) for n, v in values["new_flags"].items() if int(v)}
+    ledger["removed"] = {
+        var: {"min_nT": float(lo), "max_nT": float(hi), "rms_nT": float(np.sqrt(ms)), "readings": int(n)}
+        for var, (lo, hi, ms, n) in values["removed"].items()
     }
+    return ledger
 
 
-def _new_flag_counts(written, upstream) -> dict:
-    """Readings that this stage flagged (the bit was not set upstream), by flag."""
-    new = written["flags"].data & ~upstream["flags"].data.rechunk(written["flags"].data.chunks)
-    names = list(FLAGS)
-    values = dask.compute(*[((new >> np.uint32(FLAGS[n][0])) & np.uint32(1)).sum() for n in names])
-    return {n: int(v) for n, v in zip(names, values) if int(v)}
-
-
-def _removed(written, before: set) -> dict:
-    """Range and RMS (nT) of each correction this stage added."""
+def _ledger_reductions(written, upstream, before: set) -> dict:
+    """Lazy reductions of the ledger: readings per flag, readings with any flag,
+    readings newly flagged by this stage (bit not set upstream; only when the
+    stage kept every reading), and min, max, mean square and count of each
+    correction (``role = "correction"``) the stage added, nT."""
     import dask.array as da
 
-    out = {}
-    for name, var in written.data_vars.items():
-        if name in before or var.attrs.get("role") != "correction":
+    flags = written["flags"].data
+    names = list(FLAGS)
+
+    def per_flag(bits):
+        return {n: ((bits >> np.uint32(FLAGS[n][0])) & np.uint32(1)).sum() for n in names}
+
+    lazy = {"flagged": per_flag(flags), "any": (flags != 0).sum(), "new_flags": {}, "removed": {}}
+    if upstream is not None:
+        lazy["new_flags"] = per_flag(flags & ~upstream["flags"].data.rechunk(flags.chunks))
+    for var_name, var in written.data_vars.items():
+        if var_name in before or var.attrs.get("role") != "correction":
             continue
         x = var.data
-        lo, hi, ms, n = dask.compute(da.nanmin(x), da.nanmax(x), da.nanmean(x * x), da.isfinite(x).sum())
-        out[name] = {"min_nT": float(lo), "max_nT": float(hi), "rms_nT": float(np.sqrt(ms)), "readings": int(n)}
-    return out
+        lazy["removed"][var_name] = (da.nanmin(x), da.nanmax(x), da.nanmean(x * x), da.isfinite(x).sum())
+    return lazy
 
 
 def _log_stage(name: str, record: dict) -> None:
