@@ -147,8 +147,10 @@ class World:
 def sensor_positions(world, line, t):
     """True sensor positions at times ``t``.
 
-    The bar centre is the antenna moved back by the layback along the course;
-    sensors are spread across the course; the centre flies at the nominal
+    The bar is towed: its centre is where the antenna was when it had
+    travelled ``layback`` metres less along the line (it follows the
+    antenna's track), and the bar lies across the course of the track at that
+    point; sensors are spread across that course; the centre flies at the nominal
     altitude above the seabed below it plus slow wander and heave, and the
     bar rolls.
 
@@ -167,10 +169,15 @@ def sensor_positions(world, line, t):
         Course grid azimuth, rad, shape (N,).
     """
     arr, route = world.array, world.route
-    ae, an = line.antenna(t)
-    h = line.course(t)
+    t = np.asarray(t, dtype=float)
+    # time at which the antenna was layback metres back along the line (Newton on the monotonic along-track distance)
+    target = line.along(t) - arr.layback
+    tb = t - arr.layback / line.speed
+    for _ in range(8):
+        tb = tb - (line.along(tb) - target) / (line.speed + line.surge.rate(tb - line.t_start))
+    ce, cn = line.antenna(tb)
+    h = line.course(tb)
     sh, ch = np.sin(h), np.cos(h)
-    ce, cn = ae - arr.layback * sh, an - arr.layback * ch
     e = ce[:, None] + arr.offsets * ch[:, None]
     n = cn[:, None] - arr.offsets * sh[:, None]
     tau = t - line.t_start

@@ -17,8 +17,9 @@ the contractor before the survey.
 Physics of each reading
 -----------------------
 A reading recorded at time ``T`` was measured at ``t = T - lag`` at the true
-sensor position (antenna position moved back along the course by the
-layback and across by the sensor offset), and is::
+sensor position (the point of the antenna's track ``layback`` metres behind
+the antenna, where a towed bar follows, moved across that track's course by
+the sensor offset), and is::
 
     field = |F(x, t) + b(x)| + G(x) + D(t) + a_i + b_i cos h + c_i sin h
             + o_i + r_i (t - t0) + noise (+ spikes, dropouts)

@@ -344,6 +344,15 @@ class StageContext:
         Target number of readings per dask chunk.
     config_dir : pathlib.Path
         Folder of the survey TOML file (relative paths are relative to it).
+    lineage : dict
+        What produced the stage's inputs: ``lodeline_version``,
+        ``config_hash`` (of the survey file as parsed) and ``stages`` (name to
+        cache key of this stage and every stage upstream of it). Stages that
+        write deliverables record it beside them.
+    records : dict
+        Manifest records (``ledger``, ``summary``, ``wall_s``...) of every
+        stage upstream of this one, by name, for stages that report on the
+        whole run.
     """
 
     survey: dict
@@ -353,6 +362,8 @@ class StageContext:
     progress: Callable[..., Any]
     chunk_readings: int = 2_000_000
     config_dir: Path = Path(".")
+    lineage: dict = field(default_factory=dict)
+    records: dict = field(default_factory=dict)
 
 
 @dataclass

@@ -417,7 +417,8 @@ def run_survey(
                     continue
                 stale.add(name)
                 log.info("[%s] running: %s", name, reason)
-                record = _run_stage(plan, store, config, progress_enabled, replace=name in forced)
+                record = _run_stage(plan, store, config, progress_enabled, replace=name in forced,
+                                    plans=plans, manifest=manifest)
                 manifest["stages"][name] = record
                 store.write_manifest(manifest)
                 ran.append(name)
@@ -434,9 +435,18 @@ def run_survey(
         store.unlock()
 
 
-def _run_stage(plan: StagePlan, store: RunStore, config: SurveyConfig, progress_enabled: bool, replace: bool) -> dict:
+def _run_stage(plan: StagePlan, store: RunStore, config: SurveyConfig, progress_enabled: bool, replace: bool,
+               plans: list[StagePlan] = (), manifest: dict | None = None) -> dict:
     stage = plan.stage
     name = stage.name
+    by_name = {p.stage.name: p for p in plans}
+    ancestors = _ancestors([p.stage for p in plans], name) if name in by_name else {name}
+    lineage = {
+        "lodeline_version": __version__,
+        "config_hash": hash_json(config.raw),
+        "stages": {p.stage.name: p.key for p in plans if p.stage.name in ancestors} or {name: plan.key},
+    }
+    records = {n: (manifest or {}).get("stages", {}).get(n, {}) for n in ancestors if n != name}
     data = {}
     for up in stage.after:
         data[up] = load_stage_data(store.output_dir(up, plan.upstream[up]), config.run["chunk_readings"])
@@ -451,6 +461,8 @@ def _run_stage(plan: StagePlan, store: RunStore, config: SurveyConfig, progress_
         progress=make_progress(progress_enabled),
         chunk_readings=config.run["chunk_readings"],
         config_dir=config.folder,
+        lineage=lineage,
+        records=records,
     )
     started = time.time()
     cpu0 = time.process_time()

@@ -116,6 +116,7 @@ Yarger, H. L., Robertson, R. R. & Wentland, R. L. (1978). Diurnal drift
 
 from __future__ import annotations
 
+import dask
 import numpy as np
 import pandas as pd
 import xarray as xr
@@ -147,17 +148,18 @@ from ._levelling_blocks import (
 )
 from ._levelling_crossovers import find_crossovers
 from ._levelling_median import block_median, sensor_levels
+from ._levelling_trend import block_trend
 from ._levelling_tie import level
 
 __all__ = ["PARAMS", "STAGE", "METHODS", "run", "check_params"]
 
-METHODS = ("tie_lines", "along_line_median", "tie_lines_then_median")
+METHODS = ("tie_lines", "along_line_median", "tie_lines_then_median", "along_line_trend", "tie_lines_then_trend")
 
 PARAMS = (
     Param(
         "method",
         "tie_lines_then_median",
-        "How levels are made consistent: tie-line least squares, along-line running median, or both in turn.",
+        "How levels are made consistent: tie-line least squares, an along-line running median or robust trend, or tie lines then one of those.",
         kind=str,
         choices=METHODS,
     ),
@@ -183,6 +185,23 @@ PARAMS = (
         minimum=0.0,
         exclusive_minimum=True,
         maximum=1.0e5,
+    ),
+    Param(
+        "trend_knot_spacing_m",
+        20.0,
+        "Knot spacing of the along-line robust trend (methods '*_trend'), m (at least twice the widest anomaly of interest).",
+        kind=float,
+        minimum=0.0,
+        exclusive_minimum=True,
+        maximum=1.0e5,
+    ),
+    Param(
+        "trend_robust_multiple",
+        4.685,
+        "Biweight cut-off of the robust trend, in robust standard deviations of the residual (4.685: 95 % efficiency for Gaussian noise).",
+        kind=float,
+        minimum=1.0,
+        maximum=100.0,
     ),
     Param(
         "equalise_sensors",
@@ -296,8 +315,9 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     readings, segments = upstream["readings"], upstream["segments"]
     validate_readings(readings, segments, where="levelling")
     method = settings["method"]
-    use_ties = method in ("tie_lines", "tie_lines_then_median")
+    use_ties = method in ("tie_lines", "tie_lines_then_median", "tie_lines_then_trend")
     use_median = method in ("along_line_median", "tie_lines_then_median")
+    use_trend = method in ("along_line_trend", "tie_lines_then_trend")
 
     info = _segment_info(readings, segments)
     if use_ties and not info["is_tie"].any():
@@ -321,6 +341,8 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
 
     figures, vertices = compute_tracks(arrays, segments, chunks, step_m=settings["track_step_m"], **common)
     fig = {name: figures[:, i] for i, name in enumerate(TRACK_FIELDS)}
+    if not np.nansum(fig["accepted"]) > 0:
+        _refuse_all_excluded(readings, settings["exclude_flags"])
 
     # Equalisation of sensor levels (a constant per sensor).
     n_sensors = len(readings.attrs["sensor_names"])
@@ -388,15 +410,30 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
         )
         correction = correction + median[:, 0]
         out = add_flags(out, median[:, 1] > 0.5, _EDGE)
+    if use_trend:
+        trend = map_segment_blocks(
+            block_trend,
+            [arrays["easting"], arrays["northing"], arrays["time"], arrays["values"] - correction, arrays["flags"]],
+            segments,
+            chunks,
+            [],
+            dtype=np.float64,
+            extra_shape=(2,),
+            exclude=exclude,
+            knot_spacing_m=settings["trend_knot_spacing_m"],
+            robust_multiple=settings["trend_robust_multiple"],
+        )
+        correction = correction + trend[:, 0]
 
     out = apply_correction(
         out,
         "levelling",
         correction,
-        "levelling correction (sensor equalisation, tie-line levelling, along-line median)",
+        "levelling correction (sensor equalisation, tie-line levelling, along-line median or robust trend)",
         method=method,
         trend_order=settings["trend_order"] if use_ties else -1,
         median_window_m=settings["median_window_m"] if use_median else 0.0,
+        trend_knot_spacing_m=settings["trend_knot_spacing_m"] if use_trend else 0.0,
         equalise_sensors=int(settings["equalise_sensors"]),
     )
 
@@ -417,6 +454,19 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     summary = _summary(cross, tables["line_corrections"], levels, readings, method, sigma)
     _log(context, summary, tables["line_corrections"], use_ties)
     return StageResult(datasets={"readings": out, "segments": segments}, tables=tables, summary=summary, rejected={})
+
+
+def _refuse_all_excluded(readings: xr.Dataset, names: list[str]) -> None:
+    """Raise the error for a survey none of whose readings may be levelled, with the flag counts."""
+    flags = readings["flags"].data
+    counts = dask.compute(*[((flags & np.uint32(flag_mask(n))) != 0).sum() for n in names])
+    shown = ", ".join(f"{n} {int(c)}" for n, c in zip(names, counts) if int(c)) or "none"
+    raise DataError(
+        f"levelling: none of the {readings.sizes[READING_DIM]} readings can be levelled (flagged with "
+        f"levelling.exclude_flags: {shown}; any others lack a finite position, time or residual): see the earlier "
+        "stages' flags in the run log (a stuck or dead sensor, a base station that misses the survey) "
+        "or narrow levelling.exclude_flags"
+    )
 
 
 STAGE = Stage(

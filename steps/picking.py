@@ -61,6 +61,7 @@ from lodeline.params import Param, validate_table
 from ._picking_features import classify, could_be_linear, describe_picks, hull, linestring, polygon, ridge_samples
 from ._picking_maxima import gradient_noise, merge_by_separation, residual_noise, tile_maxima
 from ._picking_regions import regions
+from ._picking_detector import normalise, statistic_grid
 
 __all__ = ["PARAMS", "STAGE", "run", "KINDS"]
 
@@ -68,7 +69,12 @@ KINDS = ("point", "cluster", "linear", "extended")
 DERIVATIVES = ("derivative_easting", "derivative_northing", "derivative_upward")
 
 PARAMS = (
-    Param("pick_on", "total_gradient_amplitude", "Grid searched for maxima.", kind=str, choices=("total_gradient_amplitude", "abs_residual")),
+    Param("pick_on", "dipole_detector", "Grid searched for maxima: the matched subspace dipole detector on the residual, the total gradient amplitude, or the absolute residual.", kind=str, choices=("dipole_detector", "total_gradient_amplitude", "abs_residual")),
+    Param("detector_depths_m", [2.5, 3.5, 4.5], "Depths below the sensors at which the dipole detector looks for sources, m (the largest detection value is kept).", kind=list, minimum=0.1, maximum=100.0),
+    Param("detector_window_factor", 1.5, "Radius of the dipole detector's window as a multiple of the depth.", minimum=0.5, maximum=10.0),
+    Param("detector_min_window_m", 1.5, "Least radius of the dipole detector's window, m.", minimum=0.1, maximum=100.0),
+    Param("detector_background_order", 2, "Degree of the polynomial background fitted with the dipole in each window (0 constant, 1 plane, 2 quadratic).", kind=int, minimum=0, maximum=2),
+    Param("detector_min_fill", 0.5, "Least fraction of a detector window that must hold data.", minimum=0.05, maximum=1.0),
     Param("threshold_mode", "noise_multiple", "How the threshold is given.", kind=str, choices=("noise_multiple", "absolute")),
     Param("threshold_noise_multiple", 5.0, "Threshold as a multiple of the measured noise level (threshold_mode = 'noise_multiple').", minimum=0.0, exclusive_minimum=True, maximum=1.0e4),
     Param("threshold_nT_per_m", 1.0, "Threshold of the total gradient amplitude, nT/m (threshold_mode = 'absolute', pick_on = 'total_gradient_amplitude').", minimum=0.0, exclusive_minimum=True),
@@ -77,6 +83,7 @@ PARAMS = (
     Param("edge_margin_m", 2.0, "Least distance of a candidate from a blanked cell or the grid edge, m.", minimum=0.0, maximum=1000.0),
     Param("noise_max_cells", 1_000_000, "Largest subsample of cells used for the noise level.", kind=int, minimum=1000),
     Param("noise_box_m", 2.0, "Side of the box mean removed before measuring the residual noise (pick_on = 'abs_residual'), m.", minimum=0.0, exclusive_minimum=True),
+    Param("feature_noise_multiple", 5.0, "With pick_on = 'dipole_detector': linear and extended features are outlined where the total gradient amplitude exceeds this multiple of its measured noise level.", minimum=0.0, exclusive_minimum=True, maximum=1.0e4),
     Param("linear_min_picks", 4, "Least number of picks of a linear feature.", kind=int, minimum=2),
     Param("linear_min_length_m", 10.0, "Least length of a linear feature (extent of its picks), m.", minimum=0.0, exclusive_minimum=True),
     Param("linear_max_width_m", 4.0, "Largest width of a linear feature (extent of the central 80 % of its picks across its axis), m.", minimum=0.0),
@@ -127,6 +134,31 @@ def _ridges(values: da.Array, groups: dict, rows, cols, value, rules) -> dict:
     return out
 
 
+def _detector(grid, residual, spacing, s, context):
+    """Detection value grid of the matched subspace detector (max over depths) and its noise scale per depth (nT^2).
+
+    Each depth's statistic is written to the scratch folder (a zarr store)
+    before it is normalised, so it is computed once and memory stays
+    bounded by the tiles.
+    """
+    from ._dipole_model import field_unit_vector
+
+    missing = [a for a in ("main_field_inclination_deg", "main_field_grid_declination_deg") if a not in grid.attrs]
+    if missing:
+        raise DataError(f"picking: the grid lacks the attribute {missing[0]!r}: run the main_field stage upstream")
+    f_hat = field_unit_vector(float(grid.attrs["main_field_inclination_deg"]), float(grid.attrs["main_field_grid_declination_deg"]))
+    values, scales = None, []
+    for k, depth in enumerate(s["detector_depths_m"]):
+        radius = max(s["detector_min_window_m"], s["detector_window_factor"] * float(depth))
+        stat = statistic_grid(residual, float(depth), radius, spacing, f_hat, s["detector_min_fill"], s["detector_background_order"])
+        path = context.scratch / f"detector_{k}.zarr"
+        stat.rechunk(residual.chunks).to_zarr(str(path), overwrite=True)
+        z, scale = normalise(da.from_zarr(str(path)), s["noise_max_cells"])
+        scales.append(scale)
+        values = z if values is None else da.fmax(values, z)
+    return values, scales
+
+
 def run(data: dict, params: dict, context: StageContext) -> StageResult:
     """Pick candidate targets on the enhanced grids.
 
@@ -147,9 +179,11 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
         with the noise level, threshold and counts by kind.
     """
     s = validate_table(PARAMS, params, "picking")
+    if not s["detector_depths_m"] or any(not isinstance(d, (int, float)) or not d > 0 for d in s["detector_depths_m"]):
+        raise DataError("picking.detector_depths_m must be a non-empty list of positive depths in metres, e.g. [2.5, 3.5, 4.5]")
     grid = data["enhancement"]["grid"]
     validate_grid(grid, where="picking")
-    need = ["residual"] + (["total_gradient_amplitude", *DERIVATIVES] if s["pick_on"] == "total_gradient_amplitude" else [])
+    need = ["residual"] + ([*DERIVATIVES] if s["pick_on"] != "abs_residual" else [])
     missing = [v for v in need if v not in grid.data_vars]
     if missing:
         raise DataError(f"picking: the enhancement grid lacks {', '.join(missing)}; add them to enhancement.products and rerun")
@@ -158,7 +192,16 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     east = np.asarray(grid["easting"].values, dtype=float)
     residual = _dask(grid["residual"])
 
-    if s["pick_on"] == "total_gradient_amplitude":
+    if s["pick_on"] == "dipole_detector":
+        values, scales = _detector(grid, residual, (abs(dy), abs(dx)), s, context)
+        noise = 1.0
+        parts = []
+        noise_how = ("matched subspace detector (dipole of any moment + polynomial background per window); value = "
+                     "sqrt(T / scale), scale = median(T) / median(chi2_3) per depth; scales (nT^2) at depths "
+                     + ", ".join(f"{d:g} m: {c:.4g}" for d, c in zip(s["detector_depths_m"], scales)))
+        units, abs_threshold = "1", s["threshold_noise_multiple"]
+        extras = [residual] + ([_dask(grid["total_gradient_amplitude"])] if "total_gradient_amplitude" in grid else [])
+    elif s["pick_on"] == "total_gradient_amplitude":
         values = _dask(grid["total_gradient_amplitude"]).astype(float)
         noise, parts = gradient_noise([_dask(grid[v]) for v in DERIVATIVES], s["noise_max_cells"])
         noise_how = "sqrt(sum of (1.4826 x MAD)^2 of derivative_easting, derivative_northing, derivative_upward)"
@@ -191,14 +234,30 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     peak_gradient = found[:, 4] if found.shape[1] > 4 else np.full(len(found), np.nan)
 
     # regions of above-threshold cells (coordinates relative to the grid corner, for conditioning)
-    region_of, info = regions(values, threshold, north - north[0], east - east[0], rows[keep], cols[keep])
+    if s["pick_on"] == "dipole_detector":
+        # The detector's value falls off slowly (as the anomaly, r^-3) and joins the far tails of a
+        # strong item into one large region, so features are outlined on the total gradient
+        # amplitude (r^-4) above its own noise threshold instead.
+        shape_grid = _dask(grid["total_gradient_amplitude"]).astype(float) if "total_gradient_amplitude" in grid else None
+        if shape_grid is None:
+            raise DataError("picking: pick_on = 'dipole_detector' outlines features on the total gradient amplitude; "
+                            "add total_gradient_amplitude to enhancement.products and rerun")
+        tga_noise, _ = gradient_noise([_dask(grid[v]) for v in DERIVATIVES], s["noise_max_cells"])
+        shape_threshold = s["feature_noise_multiple"] * tga_noise
+        region_of, info = regions(shape_grid, shape_threshold, north - north[0], east - east[0], rows[keep], cols[keep])
+        ridge_values = shape_grid
+    else:
+        shape_threshold, tga_noise = threshold, noise
+        region_of, info = regions(values, threshold, north - north[0], east - east[0], rows[keep], cols[keep])
+        ridge_values = values
     rows, cols = rows[keep], cols[keep]
     groups = {}
     for rid in sorted(set(region_of.tolist())):
         idx = np.flatnonzero(region_of == rid)
         idx = idx[np.argsort(-value[idx], kind="stable")]
         groups[rid] = (idx, describe_picks(xy[idx]))
-    ridge_ok = _ridges(values, groups, rows, cols, value, s)
+    ridge_value = value if ridge_values is values else np.asarray(ridge_values.vindex[rows, cols].compute(), dtype=float)
+    ridge_ok = _ridges(ridge_values, groups, rows, cols, ridge_value, s)
 
     rows_out, members = [], []
     feature = 0
@@ -250,17 +309,25 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     picks.insert(0, "pick_id", np.arange(1, len(picks) + 1))
     feature_picks = pd.DataFrame(members, columns=["feature_id", "easting_m", "northing_m", "pick_value", "peak_anomaly_nT"])
 
+    box = max(3, int(round(s["noise_box_m"] / max(abs(dy), abs(dx)))))
+    residual_sigma = residual_noise(residual, box, s["noise_max_cells"])
     meta = {
         "pick_on": s["pick_on"],
+        "residual_noise_nT": residual_sigma,
+        "residual_noise_method": f"1.4826 x MAD of residual less its {2 * (box // 2) + 1}-cell box mean, / sqrt(1 - 1/n)",
         "pick_value_units": units,
         "noise_level": noise,
         "noise_method": noise_how,
         "noise_components_nT_per_m": ";".join(f"{p:.6g}" for p in parts),
+        **({"detector_depths_m": ";".join(f"{d:g}" for d in s["detector_depths_m"]),
+            "detector_scales_nT2": ";".join(f"{c:.6g}" for c in scales)} if s["pick_on"] == "dipole_detector" else {}),
         "threshold_mode": s["threshold_mode"],
         "threshold": threshold,
         "min_separation_m": s["min_separation_m"],
         "edge_margin_m": s["edge_margin_m"],
         "candidates_before_grouping": int(len(found)),
+        "feature_threshold_nT_per_m": shape_threshold,
+        "gradient_noise_nT_per_m": tga_noise,
     }
     metadata = pd.DataFrame({"key": list(meta), "value": [str(v) for v in meta.values()]})
     picks.attrs.update(meta)
@@ -271,7 +338,8 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
         "threshold": float(threshold),
         "candidates": int(len(found)),
         "counts_by_kind": counts,
-        **({"noise_nT_per_m": float(noise)} if units == "nT/m" else {"noise_nT": float(noise)}),
+        "residual_noise_nT": float(residual_sigma),
+        **({"noise_nT_per_m": float(noise)} if units == "nT/m" else {"noise_nT": float(noise)} if units == "nT" else {}),
     }
     context.log.info(
         "picking: noise %.4g %s, threshold %.4g %s; %d candidates -> %s",
