@@ -65,6 +65,8 @@ class DipoleFit:
         Readings used.
     at_bound : bool
         Whether a position ended on its search bound.
+    bound_sources : ndarray of bool (k,)
+        Per source, whether its position ended on its search bound.
     """
 
     positions: np.ndarray
@@ -75,6 +77,7 @@ class DipoleFit:
     rms_nT: float
     n: int
     at_bound: bool
+    bound_sources: np.ndarray = None
 
 
 def _background(obs: np.ndarray, kind: str) -> np.ndarray:
@@ -159,7 +162,10 @@ def fit_dipoles(
     off = 3 * k
     mcov = np.stack([cov[off + 3 * j : off + 3 * j + 3, off + 3 * j : off + 3 * j + 3] for j in range(k)])
     span = hi - lo
-    at_bound = bool(np.any((best.x - lo < 1e-4 * span) | (hi - best.x < 1e-4 * span)))
+    # within 1 % of the box (at most 5 cm) of a bound: the data did not hold the source inside the box
+    tol = np.minimum(0.01 * span, 0.05)
+    on_bound = ((best.x - lo < tol) | (hi - best.x < tol)).reshape(k, 3).any(axis=1)
+    at_bound = bool(on_bound.any())
     return DipoleFit(
         positions=pos,
         moments=moments,
@@ -169,4 +175,5 @@ def fit_dipoles(
         rms_nT=float(np.sqrt(rss / n)),
         n=int(n),
         at_bound=at_bound,
+        bound_sources=on_bound,
     )

@@ -95,6 +95,7 @@ PARAMS = (
           minimum=0, maximum=1),
     Param("joint_p_value", 1e-3, "Largest p-value of the F test at which a joint fit replaces the single fits.",
           minimum=0, exclusive_minimum=True, maximum=1),
+    Param("second_source", True, "Try a second dipole beside single fits with R^2 below joint_r2_below (kept when the F test prefers it).", kind=bool),
     Param("max_joint", 3, "Most sources in one joint fit (1 turns joint fits off).", kind=int, minimum=1, maximum=6),
     Param("fit_kinds", ["point", "cluster"], "Pick kinds fitted with a point dipole.", kind=list, choices=KINDS, minimum=1),
     Param("exclude_flags", list(DEFAULT_EXCLUDE), "Flags whose readings are left out of the fit.",
@@ -199,6 +200,7 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     progress.close()
 
     n_joint = _joint_fits(rows, xy, fitted, near, obs_all, sel["value"], f_hat, settings)
+    n_added = _second_sources(rows, near, obs_all, sel["value"], f_hat, settings, start_id=max([0, *[int(i) for i in ids]]))
     for row in rows:
         if "_at_bound" not in row:
             continue
@@ -216,6 +218,7 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
         "fitted": int(np.isfinite(table["fit_r2"]).sum()),
         "ok": int(table["ok"].sum()),
         "joint_groups": n_joint,
+        "second_sources": n_added,
         "median_r2": float(np.nanmedian(table["fit_r2"])) if np.isfinite(table["fit_r2"]).any() else float("nan"),
         "readings_loaded": int(len(obs_all)),
         "chunks_read": int(sel["chunks_read"]),
@@ -264,14 +267,73 @@ def _joint_fits(rows, xy, fitted, near, obs_all, values, f_hat, settings) -> int
         if not _better(one, fit, len(members) - 1, settings):
             continue
         names = ", ".join(str(rows[j]["pick_id"]) for j in members)
-        for j, row in zip(members, new):
+        for m, (j, row) in enumerate(zip(members, new)):
             row.update(pick_id=rows[j]["pick_id"], kind=rows[j]["kind"], joint_group=n_groups,
                        main_field_nT=rows[j]["main_field_nT"], note=f"fitted jointly with picks {names}",
-                       _at_bound=fit.at_bound)
+                       _at_bound=bool(fit.bound_sources[m]))
             rows[j] = row
         grouped.update(members)
         n_groups += 1
     return n_groups
+
+
+def _second_sources(rows, near, obs_all, values, f_hat, settings, start_id: int) -> int:
+    """Try a second dipole beside every single fit with R^2 below ``joint_r2_below``.
+
+    The second source starts at the reading of the largest absolute residual
+    of the single fit. When the extra-sum-of-squares F test prefers the
+    two-dipole fit (``joint_p_value``) and the first source stays inside its
+    search bound, the first source's row is replaced by the two-dipole
+    fit's; the second is kept as a row of its own with a new pick number
+    when it too stays inside its bound, and is dropped as a nuisance term
+    (the tail of a source outside the window) when it ends on the bound.
+    Compact sources closer together than a window are otherwise fitted as
+    one biased dipole (a cluster the picking could not resolve).
+    """
+    if not settings["second_source"]:
+        return 0
+    added = 0
+    new_rows = []
+    for i, row in enumerate(rows):
+        if row.get("joint_group", -1) != -1 or "_at_bound" not in row or row.get("_at_bound"):
+            continue
+        if not (np.isfinite(row["fit_r2"]) and row["fit_r2"] < settings["joint_r2_below"]):
+            continue
+        idx = near[i]
+        obs, val = obs_all[idx], values[idx]
+        first = np.array([row["easting_m"], row["northing_m"], row["elevation_m"]])
+        centre = np.array([[row["easting_m"], row["northing_m"]]])
+        one, _ = fit_group(obs, val, f_hat, centre, [first], settings)
+        m = np.array([row["moment_east_Am2"], row["moment_north_Am2"], row["moment_up_Am2"]])
+        from ._dipole_model import design
+
+        back = np.column_stack([np.ones(len(obs)), obs[:, :2] - obs[:, :2].mean(axis=0)])
+        model = design(obs, first[None], f_hat) @ m
+        coef, *_ = np.linalg.lstsq(back, val - model, rcond=None)
+        res = val - model - back @ coef
+        k = int(np.argmax(np.abs(res)))
+        second = np.array([obs[k, 0], obs[k, 1], row["elevation_m"]])
+        xy2 = np.vstack([centre, obs[k : k + 1, :2]])
+        fit, new = fit_group(obs, val, f_hat, xy2, [first, second], settings)
+        if fit.bound_sources[0] or not _better(one, fit, 1, settings) or fit.r2 < settings["accept_r2"]:
+            continue
+        if fit.bound_sources[1]:
+            # The second dipole went to the edge of its box: it stands for the tail of a source outside the
+            # window, which biased the single fit. Keep the first source of the two-dipole fit only.
+            new[0].update(pick_id=row["pick_id"], kind=row["kind"], joint_group=-1, main_field_nT=row["main_field_nT"],
+                          note="fitted with a nuisance dipole for a source outside the window", _at_bound=False)
+            rows[i] = new[0]
+            continue
+        added += 1
+        group = f"fitted with a second source (pick {start_id + added})"
+        new[0].update(pick_id=row["pick_id"], kind=row["kind"], joint_group=-1, main_field_nT=row["main_field_nT"],
+                      note=group, _at_bound=False)
+        new[1].update(pick_id=start_id + added, kind="cluster", joint_group=-1, main_field_nT=row["main_field_nT"],
+                      note=f"second source found fitting pick {row['pick_id']}", _at_bound=False)
+        rows[i] = new[0]
+        new_rows.append(new[1])
+    rows.extend(new_rows)
+    return added
 
 
 def _better(one, joint, extra_sources: int, settings: dict) -> bool:
