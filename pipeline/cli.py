@@ -1,4 +1,4 @@
-"""Command line: ``lodeline run``, ``lodeline status`` and ``lodeline stages``.
+"""Command line: ``lodeline run``, ``lodeline status``, ``lodeline stages`` and ``lodeline plan``.
 
 Exit codes: 0 success; 2 a problem with the input or configuration that the
 user must correct (one line on standard error, nothing written); 1 an internal
@@ -9,6 +9,7 @@ interrupted.
 from __future__ import annotations
 
 import argparse
+import os
 import sys
 import traceback
 from pathlib import Path
@@ -57,6 +58,10 @@ def _parser() -> argparse.ArgumentParser:
     p_stages = sub.add_parser("stages", help="list the stages and their parameters")
     p_stages.add_argument("stage", nargs="?", help="show only this stage's parameters")
     p_stages.add_argument("--markdown", action="store_true", help="print the configuration reference (docs/configuration.md)")
+
+    from .planning import add_plan_parser
+
+    add_plan_parser(sub)
     return parser
 
 
@@ -69,12 +74,25 @@ def _cmd_run(args) -> int:
     if args.workers is not None:
         overrides.append(f"run.workers={args.workers}")
     stages = discover_stages()
+    _check_stage_options(args, [s.name for s in stages])
     config = load_config(args.survey, overrides, [s.name for s in stages])
     report = run_survey(config, redo=tuple(args.redo), until=args.until, quiet=args.quiet, stages=stages)
     if not args.quiet:
         print(f"run folder: {report.folder}")
         print(f"stages run: {', '.join(report.ran) or 'none'}; fresh: {', '.join(report.skipped) or 'none'}")
     return 0
+
+
+def _check_stage_options(args, names: list[str]) -> None:
+    """Refuse an unknown stage in --until or --redo, naming the option."""
+    from .params import closest
+
+    given = [("--redo", name) for name in args.redo] + ([("--until", args.until)] if args.until else [])
+    for option, name in given:
+        if name not in names:
+            hint = closest(name, names)
+            did = f"; did you mean {hint!r}?" if hint else ""
+            raise ConfigError(f"{option} {name}: unknown stage{did} (stages: {', '.join(names)})")
 
 
 def _cmd_status(args) -> int:
@@ -172,15 +190,33 @@ def _record_traceback(args) -> Path | None:
     return path
 
 
+def _naming_a_file(args, err: Exception, message: str) -> str:
+    """Begin a stage's message with the survey file when it names no file itself.
+
+    A stage refuses a parameter (ParameterError) or a data set (DataError)
+    by key or by stage; the key is in the survey file, so the line names it.
+    Configuration errors already begin with the survey file or name the
+    command-line option.
+    """
+    survey = getattr(args, "survey", None)
+    if survey is None or not isinstance(err, (ParameterError, DataError)) or isinstance(err, ConfigError):
+        return message
+    if message.startswith(os.sep):
+        return message
+    return f"{Path(survey).resolve()}: {message}"
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point of the ``lodeline`` command."""
     args = _parser().parse_args(argv)
-    handlers = {"run": _cmd_run, "status": _cmd_status, "stages": _cmd_stages}
+    from .planning import cmd_plan
+
+    handlers = {"run": _cmd_run, "status": _cmd_status, "stages": _cmd_stages, "plan": cmd_plan}
     try:
         return handlers[args.command](args)
     except USER_ERRORS as err:
         message = str(err).splitlines()[0] if str(err) else type(err).__name__
-        print(f"lodeline: error: {message}", file=sys.stderr)
+        print(f"lodeline: error: {_naming_a_file(args, err, message)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("lodeline: interrupted; the next run carries on from the last finished stage", file=sys.stderr)

@@ -164,6 +164,11 @@ def load_config(path: str | Path, overrides: list[str] | None = None, stage_name
     raw = apply_overrides(raw, overrides or [])
     known = {"survey", "run", "inputs", *stage_names}
     for key, value in raw.items():
+        if key not in known and not isinstance(value, dict):
+            raise ConfigError(
+                f"{path}: unknown top-level key {key!r} (a value outside any table): move it into its table, "
+                "for example under [survey] or [run], or remove it"
+            )
         if key not in known:
             hint = closest(key, known)
             extra = f"; did you mean [{hint}]?" if hint else ""

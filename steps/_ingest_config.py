@@ -296,5 +296,6 @@ def check_stage_params(params: dict) -> None:
     """Checks of the ``[ingest]`` table that involve two keys."""
     if params["field_min_nT"] >= params["field_max_nT"]:
         raise ParameterError(
-            f"ingest.field_min_nT = {params['field_min_nT']:g} must be below ingest.field_max_nT = {params['field_max_nT']:g}"
+            f"ingest.field_min_nT = {params['field_min_nT']:g} must be below ingest.field_max_nT = {params['field_max_nT']:g}: "
+            "lower field_min_nT or raise field_max_nT"
         )

@@ -9,7 +9,9 @@ CSV (plain or gzip-compressed)
     number of each malformed row (wrong number of columns) to an
     ``invalid_row_handler``; such rows are skipped by pyarrow and handed back
     to the caller as rejects. Gzip is recognised by its magic bytes, whatever
-    the suffix.
+    the suffix. A file that does not start as UTF-8 text is refused
+    before it is parsed. A gzip stream that ends early or is damaged stops the run
+    with a one-line error naming the file; the stage stores nothing.
 Parquet
     :meth:`pyarrow.parquet.ParquetFile.iter_batches` on the mapped columns,
     keeping their types.
@@ -161,6 +163,11 @@ class TableReader:
     def _fail(self, what: str) -> DataError:
         return DataError(f"{self.path}: {what}")
 
+    def _damaged(self, after_row: int | None, text: str) -> DataError:
+        """The error for a compressed stream that cannot be read to its end (truncated or damaged)."""
+        where = f" after data row {after_row}" if after_row else ""
+        return self._fail(f"the gzip data are truncated or damaged{where} ({text}): copy the file again from its source")
+
     def _check_exists(self) -> None:
         if not self.path.is_file():
             raise self._fail(f"file not found: check {self.where}.files")
@@ -175,6 +182,19 @@ class TableReader:
         compression = "gzip" if self._is_gzip() else None
         return pa.input_stream(str(self.path), compression=compression)
 
+    def _check_text(self) -> None:
+        """Refuse a CSV file whose first 64 KiB are not UTF-8 (binary data, another encoding)."""
+        with self._csv_source() as stream:
+            head = stream.read(1 << 16)
+        try:
+            head.decode("utf-8")
+        except UnicodeDecodeError as err:
+            if err.start < len(head) - 3:  # not merely a character cut at the end of the sample
+                raise self._fail(
+                    f"not UTF-8 text (byte 0x{head[err.start]:02x} at byte {err.start}): save the file as UTF-8 CSV text, "
+                    f'or set {self.where}.format = "parquet" if it is Parquet'
+                ) from None
+
     def _read_header(self) -> list[str]:
         if self.fmt == "parquet":
             try:
@@ -185,6 +205,7 @@ class TableReader:
                 raise self._fail(f"the file has no data rows: remove it from {self.where}.files or replace it")
             return list(self._parquet.schema_arrow.names)
         try:
+            self._check_text()
             reader = pacsv.open_csv(
                 self._csv_source(),
                 read_options=pacsv.ReadOptions(block_size=max(self.block_bytes, 1 << 16), use_threads=False),
@@ -194,6 +215,8 @@ class TableReader:
             text = _first_line(err)
             if "Empty CSV file" in text:
                 raise self._fail(f"the file is empty: remove it from {self.where}.files or replace it") from None
+            if self._is_gzip() and not isinstance(err, pa.ArrowInvalid):
+                raise self._damaged(None, text) from None
             raise self._fail(f"cannot read the header ({text}): check that the file is UTF-8 CSV text") from None
         names = list(reader.schema.names)
         reader.close()
@@ -292,6 +315,9 @@ class TableReader:
                 f"cannot read the rows after data row {next_row - 1} ({_first_line(err)}): "
                 "check that the file is UTF-8 text with the set delimiter"
             ) from None
+        except (OSError, EOFError) as err:
+            # A gzip stream cut short (an interrupted copy) or damaged.
+            raise self._damaged(next_row - 1, _first_line(err)) from None
         finally:
             reader.close()
         pending.extend(skipped)

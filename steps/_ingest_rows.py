@@ -14,7 +14,12 @@ File sample
     for mistakes that would reject or corrupt the whole file: a field median
     that cannot be Earth's total field in nT (wrong ``field_unit``),
     geographic positions mostly outside +-180 deg / +-90 deg (projected
-    coordinates given, or x and y swapped).
+    coordinates given, or x and y swapped), a median position outside the
+    survey CRS's area of use that fits it with x and y exchanged (swapped),
+    and positions declared projected that fit longitude/latitude and lie
+    outside the position CRS's area of use (:attr:`pyproj.CRS.area_of_use`,
+    projected with :meth:`pyproj.Transformer.transform_bounds` and widened
+    by a tenth of its span; degrees given as metres).
 Reject fraction
     At the end of each file the fraction of rejected rows is compared with
     ``max_rows_rejected_fraction`` and the run fails with the commonest
@@ -30,6 +35,7 @@ from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
+from pyproj import Transformer
 
 from lodeline.model import DataError
 
@@ -315,10 +321,19 @@ class FileSample:
                 )
             self._check_area(float(np.median(x)), float(np.median(y)))
         elif lonlat > 0.5:
+            mx, my = float(np.median(x)), float(np.median(y))
+            bounds = _projected_area(self.spec.position_crs)
+            if bounds is not None and not _inside(mx, my, bounds):
+                raise DataError(
+                    f"{self.path}: positions fit longitude/latitude (median x {mx:.6g}, y {my:.6g}) and lie outside the "
+                    f"area of use of {where}.position_crs = {self.spec['position_crs']!r} "
+                    f"(x {bounds[0]:.0f} to {bounds[2]:.0f}, y {bounds[1]:.0f} to {bounds[3]:.0f}): they look like degrees: "
+                    f"set {where}.position_crs = \"EPSG:4326\""
+                )
             self.log.warning(
                 "%s: most positions fit longitude/latitude (median x %.6g, y %.6g) but position_crs is projected: "
                 "if they are degrees, set %s.position_crs = \"EPSG:4326\"",
-                self.path, np.median(x), np.median(y), where,
+                self.path, mx, my, where,
             )
 
     def _check_area(self, lon: float, lat: float) -> None:
@@ -326,13 +341,44 @@ class FileSample:
         if area is None:
             return
         margin = 3.0
-        inside = area.west - margin <= lon <= area.east + margin and area.south - margin <= lat <= area.north + margin
-        if not inside:
+
+        def inside(a: float, b: float) -> bool:
+            return area.west - margin <= a <= area.east + margin and area.south - margin <= b <= area.north + margin
+
+        if not inside(lon, lat) and inside(lat, lon):
+            where, xcol, ycol = self.spec.where, self.spec.mapping["x"], self.spec.mapping["y"]
+            raise DataError(
+                f"{self.path}: the median position (longitude {lon:.6g}, latitude {lat:.6g}) is outside the area of use of "
+                f"the survey CRS ({area.west:g}..{area.east:g} E, {area.south:g}..{area.north:g} N) and inside it with x and y "
+                f"exchanged: x and y look swapped: set {where}.columns.x = \"{ycol}\" and {where}.columns.y = \"{xcol}\""
+            )
+        if not inside(lon, lat):
             self.log.warning(
                 "%s: the median position (longitude %.6g, latitude %.6g) is outside the area of use of the survey CRS "
                 "(%g..%g E, %g..%g N): check survey.crs, position_crs and that x is longitude and y latitude",
                 self.path, lon, lat, area.west, area.east, area.south, area.north,
             )
+
+
+def _projected_area(crs) -> tuple[float, float, float, float] | None:
+    """Bounds (xmin, ymin, xmax, ymax) of a projected CRS's area of use in its own
+    units, widened by a tenth of their span on each side; None when unknown."""
+    area = getattr(crs, "area_of_use", None)
+    if area is None:
+        return None
+    try:
+        to_crs = Transformer.from_crs("EPSG:4326", crs, always_xy=True)
+        xmin, ymin, xmax, ymax = to_crs.transform_bounds(area.west, area.south, area.east, area.north, densify_pts=21)
+    except Exception:  # noqa: BLE001 - an area that cannot be projected gives no test
+        return None
+    if not all(np.isfinite([xmin, ymin, xmax, ymax])) or xmax <= xmin or ymax <= ymin:
+        return None
+    dx, dy = 0.1 * (xmax - xmin), 0.1 * (ymax - ymin)
+    return xmin - dx, ymin - dy, xmax + dx, ymax + dy
+
+
+def _inside(x: float, y: float, bounds: tuple[float, float, float, float]) -> bool:
+    return bounds[0] <= x <= bounds[2] and bounds[1] <= y <= bounds[3]
 
 
 _NUMERIC = re.compile(r"^\s*[+-]?\d+([.,]\d*)?\s*$")

@@ -20,7 +20,10 @@ Time
     ISO 8601 times with a zone designator are converted to UTC; naive times
     and seconds of day are taken in the configured time zone. Seconds of day
     that fall back by more than 12 h from the previous row of the same file
-    are read as crossing midnight (one day added, logged).
+    are read as crossing midnight (one day added, logged). Several readings
+    files on one configured date whose times leave a gap of more than 12 h
+    are refused (a midnight crossed between files cannot be told from the
+    rows): a date column or ISO 8601 times are then needed.
 Positions
     x/y are projected from ``position_crs`` to the survey CRS with
     :class:`pyproj.Transformer` (``always_xy=True``), one call per batch.
@@ -63,7 +66,7 @@ from lodeline.model import READING_DIM, DataError, Stage, StageContext, StageRes
 
 from ._ingest_config import BASE_INPUT, PARAMS, READINGS_INPUT, InputSpec, check_stage_params, input_spec
 from ._ingest_ledger import REASONS, FileLedger, RejectLog, files_table
-from ._ingest_parse import MidnightTracker
+from ._ingest_parse import MIDNIGHT_FALLBACK_S, NS_PER_S, MidnightTracker
 from ._ingest_read import Batch, TableReader, detect_format, file_stem
 from ._ingest_rows import FileSample, Limits, Parsed, check_rejected_fraction, parse_base, parse_readings
 from ._ingest_store import OUTPUT_DTYPES, Layout, Spool, lazy_column, plan_layout, scatter, time_order_flags
@@ -106,6 +109,7 @@ class _Pass1:
     time_min: int | None = None
     time_max: int | None = None
     crossings: int = 0
+    file_ranges: list = field(default_factory=list)
 
     def add_times(self, t: np.ndarray) -> None:
         if t.size:
@@ -171,6 +175,7 @@ def _readings_file(path: Path, index: int, spec: InputSpec, params: dict, limits
     stem = file_stem(path)
     cat = state.catalogue
     lines_before = len(cat.lines)
+    first, last = None, None
     for batch in reader:
         _record_malformed(batch, ledger, rejects, spec, path)
         if batch.size == 0:
@@ -193,11 +198,34 @@ def _readings_file(path: Path, index: int, spec: InputSpec, params: dict, limits
         columns = {k: v[kept] for k, v in parsed.values.items()}
         columns.update(line=line, sensor=sensor, source_file=np.full(n, index), source_row=batch.rows[kept])
         state.add_times(columns["time"])
+        lo, hi = int(columns["time"].min()), int(columns["time"].max())
+        first, last = (lo, hi) if first is None else (min(first, lo), max(last, hi))
         state.spool.append(columns)
         _check_names(path, spec, cat, ledger.rows_kept, len(cat.lines) - lines_before)
     _finish_file(reader, ledger, sample, tracker, spec, params, context)
     state.crossings += len(tracker.crossings)
+    if first is not None:
+        state.file_ranges.append((path, first, last))
     return ledger
+
+
+def _check_day_split(state: _Pass1, spec: InputSpec) -> None:
+    """Refuse files of seconds of day on one configured date that lie more than
+    12 h apart: files recorded after a midnight that no file shows (each file's
+    own crossings are found row by row) would be placed a day early."""
+    if spec["time_format"] != "seconds_of_day" or "date" in spec.mapping or len(state.file_ranges) < 2:
+        return
+    ranges = sorted(state.file_ranges, key=lambda r: r[1])
+    path0, lo0, reach = ranges[0]
+    for path1, lo1, hi1 in ranges[1:]:
+        if lo1 - reach > MIDNIGHT_FALLBACK_S * NS_PER_S:
+            raise DataError(
+                f"{path0}: its times (seconds of day on {spec.where}.date, {_iso(lo0)} to {_iso(reach)}) end more than "
+                f"{MIDNIGHT_FALLBACK_S / 3600:g} h before {path1.name} begins ({_iso(lo1)}): the survey seems to cross "
+                f"midnight between files: map a date column ({spec.where}.columns.date) or give ISO 8601 date-times"
+            )
+        if hi1 >= reach:
+            path0, lo0, reach = path1, lo1, hi1
 
 
 def _check_names(path: Path, spec: InputSpec, cat: _Catalogue, kept: int, new_lines: int) -> None:
@@ -407,6 +435,7 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     })
     try:
         state, ledgers = _read_readings(spec, params, limits, context, rejects, survey_crs)
+        _check_day_split(state, spec)
         base, base_ledgers = _read_base(context, params, limits, rejects)
     finally:
         rejects.close()
