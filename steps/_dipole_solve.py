@@ -80,6 +80,32 @@ class DipoleFit:
     bound_sources: np.ndarray = None
 
 
+def _correlation_factor(obs: np.ndarray, res: np.ndarray, max_step_m: float = 1.0) -> float:
+    """Variance inflation ``(1 + r) / (1 - r)`` for residuals correlated along the track.
+
+    ``r`` is the correlation of consecutive residuals (readings in storage
+    order, so along a track, closer than ``max_step_m``); with that lag-one
+    correlation the effective number of independent readings is about
+    ``n (1 - r) / (1 + r)`` (Bayley & Hammersley 1946, The "effective"
+    number of independent observations in an autocorrelated time series),
+    so the covariance of the fit grows by the inverse. White noise gives
+    ``r`` near 0 and no change; a misfit that varies smoothly along the track
+    (an unmodelled neighbour, a residual level) gives ``r`` near 1 and widens
+    the uncertainties to match.
+    """
+    if len(res) < 10:
+        return 1.0
+    step = np.hypot(np.diff(obs[:, 0]), np.diff(obs[:, 1]))
+    ok = step < max_step_m
+    if ok.sum() < 5:
+        return 1.0
+    a, b = res[:-1][ok], res[1:][ok]
+    den = float(np.sqrt(np.sum(a * a) * np.sum(b * b)))
+    r = float(np.sum(a * b) / den) if den > 0 else 0.0
+    r = min(max(r, 0.0), 0.99)
+    return (1.0 + r) / (1.0 - r)
+
+
 def _background(obs: np.ndarray, kind: str) -> np.ndarray:
     ones = np.ones((obs.shape[0], 1))
     if kind == "constant":
@@ -156,7 +182,7 @@ def fit_dipoles(
         minus = design(obs, (flat - step).reshape(k, 3), f_hat) @ coef[: 3 * k]
         jac_pos[:, i] = (plus - minus) / (2 * _STEP_M)
     jac = np.hstack([jac_pos, a])
-    s2 = rss / max(n - n_par, 1)
+    s2 = rss / max(n - n_par, 1) * _correlation_factor(obs, res)
     cov = s2 * np.linalg.pinv(jac.T @ jac)
     pcov = np.stack([cov[3 * j : 3 * j + 3, 3 * j : 3 * j + 3] for j in range(k)])
     off = 3 * k

@@ -6,7 +6,11 @@ solutions (``euler``), dipole fits and mass bands (``sizing``):
 Confirmation
     A compact pick (kind ``point`` or ``cluster``) becomes a target when its
     dipole fit is accepted (``dipole_fit`` marks ``ok``: R^2 above its
-    threshold, position inside the search bound). Picks whose fit failed
+    threshold, position inside the search bound), the fitted dipole's
+    peak anomaly is at least ``min_snr`` times the residual noise, and the
+    source lies no higher than ``min_burial_m`` below the seabed (where the
+    seabed is known): a fit that puts a source well up in the water column
+    explains noise or the tail of a neighbour, not a buried item. Picks whose fit failed
     are not dropped: they go to the table ``unconfirmed`` with the reason,
     and ``keep_unconfirmed = true`` lists them as targets too (kind and
     position of the pick, no fit figures). Fits of different picks that
@@ -109,6 +113,10 @@ PARAMS = (
     Param("mass_full_kg", 1000.0, "Upper mass at which the size term reaches 1, kg.", minimum=0.0, exclusive_minimum=True),
     Param("merge_distance_m", 0.5, "Fitted sources of different picks closer than this horizontally are one target, m.", minimum=0.0),
     Param("merge_depth_m", 0.5, "... and closer than this in depth, m.", minimum=0.0),
+    Param("min_snr", 5.0, "A fitted compact target is confirmed only when its peak anomaly is at least this multiple of the residual noise.",
+          minimum=0.0),
+    Param("min_burial_m", -1.0, "A fitted compact target is confirmed only when it lies no higher than this below the seabed, m "
+          "(negative: above the seabed; an item proud of the seabed has its centre above it by its own radius).", optional=True),
     Param("keep_unconfirmed", False, "List picks whose dipole fit failed as targets too (without fit figures).", kind=bool),
     Param("seabed_radius_m", 2.0, "Radius within which the seabed elevation under a target is averaged from the readings, m.",
           minimum=0.0, exclusive_minimum=True),
@@ -240,7 +248,20 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
                              "geometry_wkt", "easting_m", "northing_m"]].reset_index(drop=True),
                       on="pick_id", how="left", suffixes=("", "_pick"))
     compact = d["kind"].isin(COMPACT)
-    ok = compact & d["ok"].astype(bool) & np.isfinite(d["easting_m"])
+    peak = np.array([_peak_anomaly(r, f_hat) if bool(r["ok"]) else np.nan for _, r in d.iterrows()])
+    weak = compact & d["ok"].astype(bool) & ~(peak >= s["min_snr"] * noise_nT) if noise_nT > 0 else pd.Series(False, index=d.index)
+    d["note"] = d["note"].where(~weak, [f"peak anomaly {p:.3g} nT below min_snr x noise ({s['min_snr']:g} x {noise_nT:.3g} nT)" for p in peak])
+    ok = compact & d["ok"].astype(bool) & np.isfinite(d["easting_m"]) & ~weak
+    exclude = flag_mask(*s["exclude_flags"])
+    if s["min_burial_m"] is not None:
+        fit_xy = d[["easting_m", "northing_m"]].to_numpy(float)
+        bed = np.full(len(d), np.nan)
+        if ok.any():
+            bed[ok.to_numpy()] = _seabed(readings, fit_xy[ok.to_numpy()], s["seabed_radius_m"], exclude)
+        high = ok & (bed - d["elevation_m"].to_numpy(float) < s["min_burial_m"])
+        d.loc[high, "note"] = [f"source {b:.2f} m above the seabed (min_burial_m = {s['min_burial_m']:g})"
+                               for b in (d.loc[high, "elevation_m"] - bed[high.to_numpy()])]
+        ok = ok & ~high
     unconfirmed = d[compact & ~ok]
     fitted, merged = _merge(d[ok], s)
 
@@ -271,7 +292,7 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     xy = table[["easting_m", "northing_m"]].to_numpy(float)
     to_ll = Transformer.from_crs(CRS.from_user_input(context.survey["crs_wkt"]), CRS.from_epsg(4326), always_xy=True)
     table["longitude"], table["latitude"] = to_ll.transform(xy[:, 0], xy[:, 1]) if len(xy) else ([], [])
-    bed = _seabed(readings, xy, s["seabed_radius_m"], flag_mask(*s["exclude_flags"]))
+    bed = _seabed(readings, xy, s["seabed_radius_m"], exclude)
     table["burial_m"] = bed - table["elevation_m"].to_numpy(float)
 
     table = score_rows(table, s)

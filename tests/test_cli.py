@@ -117,8 +117,10 @@ def test_second_run_skips_and_set_reruns_downstream_only(tmp_path, capsys):
     other = [x.replace("spikes.threshold_nT=2.5", "spikes.threshold_nT=3.5") for x in sets]
     assert main(["status", str(survey), *other]) == 0
     out = capsys.readouterr().out
-    assert "spikes       stale  (parameter spikes.threshold_nT changed: 2.5 -> 3.5)" in out
-    assert "positions    stale  (upstream stage spikes changed)" in out
+    import re
+
+    assert re.search(r"^spikes +stale  \(parameter spikes.threshold_nT changed: 2.5 -> 3.5\)$", out, re.M), out
+    assert re.search(r"^positions +stale  \(upstream stage spikes changed\)$", out, re.M), out
 
 
 def test_user_errors_exit_2_with_one_line_and_write_nothing(tmp_path, capsys):
@@ -286,3 +288,48 @@ def test_internal_error_is_one_line_with_traceback_in_log(tmp_path, capsys, monk
     log = (tmp_path / "run" / "run.log").read_text()
     assert "Traceback" in log and "simulated bug" in log
     assert not list((tmp_path / "run" / "store").glob("spikes-*"))
+
+
+def test_demo_targets_scored_against_truth(demo_run):
+    """The demo's target table against its truth table (tests/_scoring.py: one-to-one match within 1 m).
+
+    Figures asserted are the acceptance figures of the target table where the
+    pipeline meets them, and otherwise the level it reaches today (a floor that
+    catches a regression; the gap to the acceptance figure is stated in the
+    README and the issue notes).
+    """
+    import numpy as np
+    import pandas as pd
+
+    sys.path.insert(0, str(Path(__file__).parent))
+    from _scoring import score
+
+    survey, run = demo_run
+    targets = pd.read_csv(run / "ranking" / "targets.csv")
+    truth = pd.read_csv(DEMO / "data" / "truth.csv")
+    grid = xr.open_zarr(run / "gridding" / "grid.zarr")
+    cell = float(grid.attrs["cell_size_m"])
+    area_ha = float(np.isfinite(grid["residual"]).sum().compute()) * cell * cell / 1e4
+    s = score(targets, truth, noise_nT=0.05, area_ha=area_ha)
+    print({k: v for k, v in s.items() if k != "pairs"})
+    # acceptance figures met
+    assert s["median_horizontal_error_m"] <= 0.25
+    assert s["median_relative_depth_error"] <= 0.20
+    assert s["moment_within_2x"] >= 0.80
+    assert s["linear_reported"] and s["extended_reported"]
+    # below the acceptance figures (Pd >= 0.95, <= 2 false alarms per ha): floors at today's level less a margin
+    # of one item (1/45 = 0.022) and one false alarm (0.22 per ha)
+    assert s["pd"] >= PD_FLOOR - 0.023
+    assert s["false_alarms_per_ha"] <= FA_CEILING + 0.22
+    seeds = pd.read_csv(run / "ranking" / "seed_checks.csv")
+    assert seeds["found"].all() and (seeds["horizontal_error_m"] <= 1.0).all()
+    # the deliverables open as GIS layers
+    import pyogrio
+
+    assert pyogrio.read_info(run / "ranking" / "targets.gpkg")["features"] == len(targets)
+    doc = json.loads((run / "ranking" / "targets.geojson").read_text())
+    assert len(doc["features"]) == len(targets)
+
+
+PD_FLOOR = 0.80
+FA_CEILING = 3.9
