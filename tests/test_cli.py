@@ -317,10 +317,10 @@ def test_demo_targets_scored_against_truth(demo_run):
     assert s["median_relative_depth_error"] <= 0.20
     assert s["moment_within_2x"] >= 0.80
     assert s["linear_reported"] and s["extended_reported"]
-    # below the acceptance figures (Pd >= 0.95, <= 2 false alarms per ha): floors at today's level less a margin
-    # of one item (1/45 = 0.022) and one false alarm (0.22 per ha)
+    assert s["false_alarms_per_ha"] <= 2.0
+    # below the acceptance figure (Pd >= 0.95 for items of predicted peak >= 10 x noise): a floor at today's
+    # level (38 of 45) less one item (1/45 = 0.022), to catch a regression
     assert s["pd"] >= PD_FLOOR - 0.023
-    assert s["false_alarms_per_ha"] <= FA_CEILING + 0.22
     seeds = pd.read_csv(run / "ranking" / "seed_checks.csv")
     assert seeds["found"].all() and (seeds["horizontal_error_m"] <= 1.0).all()
     # the deliverables open as GIS layers
@@ -331,5 +331,4 @@ def test_demo_targets_scored_against_truth(demo_run):
     assert len(doc["features"]) == len(targets)
 
 
-PD_FLOOR = 0.80
-FA_CEILING = 3.9
+PD_FLOOR = 38 / 45
