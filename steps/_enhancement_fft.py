@@ -42,6 +42,17 @@ Edges and blanks
     meets no step. After the inverse transform the padding is cut off and the
     blank cells are set to NaN again.
 
+Speed and memory
+    The multipliers depend only on the padded shape, the cell steps and the
+    product settings, so they are computed once per padded shape and kept
+    (a few shapes per grid: interior tiles share one). Per tile there is one
+    forward real FFT; each product is the inverse transform of the spectrum
+    times its multiplier, formed in one reused buffer that the inverse
+    transform may overwrite. The temporaries of a tile are then the
+    spectrum, that buffer and one inverse transform at a time (about three
+    padded tiles), besides the fill and the padding made before the
+    forward transform and released after it.
+
 The zero wavenumber: derivatives remove it; upward continuation and the
 reduction to the pole keep the mean level (multiplier 1 at ``k = 0``), so a
 constant regional level passes through unchanged.
@@ -66,6 +77,8 @@ Trefethen, L. N. (2000). Spectral Methods in MATLAB, ch. 3 (the Nyquist
 """
 
 from __future__ import annotations
+
+import functools
 
 import numpy as np
 import scipy.fft
@@ -236,6 +249,25 @@ def rtp_operator(ke, kn, k, field_dir, magnetisation_dir=None, stabilise_below_d
     return op
 
 
+@functools.lru_cache(maxsize=8)
+def _multipliers(shape, spacing, products, upward_m, field_dir, magnetisation_dir, stabilise_below_deg):
+    """The wavenumber multipliers of the products for one padded shape (read-only arrays)."""
+    ke, kn, k = wavenumbers(shape, spacing)
+    need_grad = any(p in products for p in ("total_gradient_amplitude", "tilt_angle"))
+    mult = {}
+    for name, make in (("derivative_upward", lambda: -k), ("derivative_easting", lambda: 1j * ke),
+                       ("derivative_northing", lambda: 1j * kn)):
+        if name in products or need_grad:
+            mult[name] = np.broadcast_to(make(), (shape[0], shape[1] // 2 + 1))
+    if "upward_continued" in products:
+        mult["upward_continued"] = np.exp(-k * upward_m)
+    if "reduced_to_pole" in products:
+        mult["reduced_to_pole"] = rtp_operator(ke, kn, k, field_dir, magnetisation_dir, stabilise_below_deg)
+    for m in mult.values():
+        m.flags.writeable = False
+    return mult
+
+
 def filter_tile(
     values: np.ndarray,
     products: tuple[str, ...],
@@ -279,31 +311,41 @@ def filter_tile(
     filled, valid, mean = fill_blanks(values, taper)
     pad = tuple(max(8, int(np.ceil(pad_fraction * n))) for n in values.shape)
     padded, inner = pad_taper(filled, pad)
-    spectrum = scipy.fft.rfft2(padded)
-    ke, kn, k = wavenumbers(padded.shape, spacing)
+    del filled
     shape = padded.shape
+    spectrum = scipy.fft.rfft2(padded, overwrite_x=True)
+    del padded
+    mult = _multipliers(shape, tuple(float(x) for x in spacing), tuple(products), float(upward_m),
+                        tuple(float(x) for x in field_dir),
+                        None if magnetisation_dir is None else tuple(float(x) for x in magnetisation_dir),
+                        float(stabilise_below_deg))
+    buffer = np.empty_like(spectrum)
 
-    def back(multiplier):
-        return scipy.fft.irfft2(spectrum * multiplier, s=shape)[inner]
+    def back(name, into):
+        np.multiply(spectrum, mult[name], out=buffer)
+        into[...] = scipy.fft.irfft2(buffer, s=shape, overwrite_x=True)[inner]
+        return into
 
-    need_grad = any(p in products for p in ("total_gradient_amplitude", "tilt_angle"))
+    index = {name: i for i, name in enumerate(products)}
+    # Gradients needed for the total gradient amplitude and tilt but not asked for go to spare planes.
     grads = {}
-    for name, mult in (("derivative_upward", -k), ("derivative_easting", 1j * ke), ("derivative_northing", 1j * kn)):
-        if name in products or need_grad:
-            grads[name] = back(mult)
-    for i, name in enumerate(products):
+    for name in ("derivative_upward", "derivative_easting", "derivative_northing"):
+        if name in mult:
+            grads[name] = back(name, out[index[name]] if name in index else np.empty(values.shape))
+    for name in products:
+        i = index[name]
         if name in grads:
-            result = grads[name]
-        elif name == "total_gradient_amplitude":
-            result = np.sqrt(grads["derivative_upward"] ** 2 + grads["derivative_easting"] ** 2 + grads["derivative_northing"] ** 2)
+            continue
+        if name == "total_gradient_amplitude":
+            du, de, dn = grads["derivative_upward"], grads["derivative_easting"], grads["derivative_northing"]
+            np.sqrt(du * du + de * de + dn * dn, out=out[i])
         elif name == "tilt_angle":
             horizontal = np.hypot(grads["derivative_easting"], grads["derivative_northing"])
-            result = np.arctan2(-grads["derivative_upward"], horizontal)
-        elif name == "upward_continued":
-            result = back(np.exp(-k * upward_m)) + mean
-        elif name == "reduced_to_pole":
-            result = back(rtp_operator(ke, kn, k, field_dir, magnetisation_dir, stabilise_below_deg)) + mean
+            np.arctan2(-grads["derivative_upward"], horizontal, out=out[i])
+        elif name in ("upward_continued", "reduced_to_pole"):
+            back(name, out[i])
+            out[i] += mean
         else:
             raise ValueError(f"unknown product {name!r}")
-        out[i] = np.where(valid, result, np.nan)
+    out[:, ~valid] = np.nan
     return out

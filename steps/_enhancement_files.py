@@ -54,28 +54,46 @@ def _north_up(grid: xr.DataArray) -> np.ndarray:
 def write_geotiff(grid: xr.DataArray, crs_wkt: str, path: Path) -> Path:
     """Write one grid variable as a single-band float32 GeoTIFF (NaN = nodata).
 
-    The grid is loaded whole (one product of the final survey grid).
+    Written strip by strip of the grid's row chunks, so memory stays at one
+    strip whatever the grid size; strips without a valid cell are not
+    written (GDAL leaves those blocks empty, read back as nodata).
     """
     import rasterio
     from rasterio.crs import CRS
+    from rasterio.windows import Window
 
-    transform, _, _ = grid_transform(grid)
-    values = _north_up(grid)
+    transform, flip_rows, flip_cols = grid_transform(grid)
+    g = grid.transpose("northing", "easting")
+    data = g.data
+    ny, nx = g.shape
+    step = data.chunks[0][0] if getattr(data, "chunks", None) else ny
     profile = {
         "driver": "GTiff",
-        "height": values.shape[0],
-        "width": values.shape[1],
+        "height": ny,
+        "width": nx,
         "count": 1,
         "dtype": "float32",
         "crs": CRS.from_wkt(crs_wkt),
         "transform": transform,
         "nodata": np.float32(np.nan),
         "compress": "deflate",
+        "tiled": True,
+        "blockxsize": 256,
+        "blockysize": 256,
+        "sparse_ok": True,
     }
     tags = {k: (v if isinstance(v, str) else json.dumps(v)) for k, v in grid.attrs.items()}
     tags["nodata_meaning"] = "NaN: blank cell (no data)"
     with rasterio.open(path, "w", **profile) as dst:
-        dst.write(values, 1)
+        for j0 in range(0, ny, step):
+            j1 = min(ny, j0 + step)
+            block = np.asarray(data[j0:j1], dtype=np.float32)
+            if not np.isfinite(block).any():
+                continue
+            if flip_cols:
+                block = block[:, ::-1]
+            row0 = ny - j1 if flip_rows else j0
+            dst.write(block[::-1] if flip_rows else block, 1, window=Window(0, row0, nx, j1 - j0))
         dst.update_tags(**tags)
         dst.set_band_description(1, str(grid.name))
     return path

@@ -9,7 +9,16 @@ whole area at once. A per-chunk bounding box of the accepted readings,
 computed once, picks the reading chunks a tile needs.
 
 Blanking: a node farther than ``blank_distance_m`` from every accepted
-reading is NaN (``scipy.spatial.cKDTree`` distances).
+reading is NaN (Euclidean distances, compiled in
+:mod:`lodeline.steps._gridding_lattice`).
+
+Finding a tile's readings: each prepared chunk is sorted once by the
+square *block* (``block_m`` a side, in absolute survey coordinates) each
+reading falls in, with the unique blocks and where each starts; a tile
+depends only on the chunks holding a block within its halo, and takes from
+each the few contiguous runs of blocks that cover it, then puts them back in
+storage order (the line gridder follows the tracks). Tiles that no reading
+reaches are NaN without a task.
 
 Reference gridders (``method = "linear"`` or ``"cubic"``): Delaunay
 triangulation of all accepted readings with linear interpolation on each
@@ -25,18 +34,36 @@ import dask
 import dask.array as da
 import numpy as np
 from scipy.interpolate import griddata
-from scipy.spatial import cKDTree
 
-from . import _gridding_lines as lines
+from . import _gridding_lattice as lattice
+
+#: Offset that keeps block indices positive in the block key.
+_KEY_OFFSET = 1 << 30
+_KEY_SHIFT = 1 << 31
 
 
-def _prep(e, n, flags, line, sensor, *vals, exclude: int, keep_line):
-    """Accepted readings of one chunk: (e, n, values (m, k), track)."""
+def _block_keys(e, n, block_m: float) -> np.ndarray:
+    bi = np.floor(e / block_m).astype(np.int64) + _KEY_OFFSET
+    bj = np.floor(n / block_m).astype(np.int64) + _KEY_OFFSET
+    return bi * _KEY_SHIFT + bj
+
+
+def _prep(e, n, flags, line, sensor, *vals, exclude: int, keep_line, block_m=None):
+    """Accepted readings of one chunk: (e, n, values (m, k), track), plus, when
+    ``block_m`` is given, their position in the chunk, the unique block keys
+    and where each block starts, all sorted by block (storage order within one)."""
     v = np.stack([np.asarray(x, dtype=np.float64) for x in vals], axis=1)
     ok = ((flags & np.uint32(exclude)) == 0) & np.isfinite(e) & np.isfinite(n) & np.all(np.isfinite(v), axis=1)
     ok &= keep_line[line]
     track = line.astype(np.int64) * 65536 + sensor.astype(np.int64)
-    return e[ok], n[ok], v[ok], track[ok]
+    e, n, v, track = e[ok], n[ok], v[ok], track[ok]
+    if block_m is None:
+        return e, n, v, track
+    key = _block_keys(e, n, block_m)
+    order = np.argsort(key, kind="stable")
+    key = key[order]
+    starts = np.flatnonzero(np.concatenate([[True], key[1:] != key[:-1]])) if key.size else np.zeros(0, np.int64)
+    return e[order], n[order], v[order], track[order], order, key[starts], starts
 
 
 def _bbox(chunk):
@@ -46,8 +73,8 @@ def _bbox(chunk):
     return (float(e.min()), float(e.max()), float(n.min()), float(n.max()), int(e.size))
 
 
-def prepared_chunks(readings, variables, exclude: int, keep_line: np.ndarray):
-    """One delayed (e, n, values, track) per reading chunk, accepted readings only."""
+def prepared_chunks(readings, variables, exclude: int, keep_line: np.ndarray, block_m: float | None = None):
+    """One delayed prepared chunk per reading chunk, accepted readings only (see :func:`_prep`)."""
     base = readings["easting"].data
     chunks = base.chunks
     def blocks(name):
@@ -59,9 +86,20 @@ def prepared_chunks(readings, variables, exclude: int, keep_line: np.ndarray):
         return arr.to_delayed().ravel()
     cols = [blocks(x) for x in ("easting", "northing", "flags", "line_index", "sensor_index", *variables)]
     return [
-        dask.delayed(_prep, pure=True)(*parts, exclude=exclude, keep_line=keep_line)
+        dask.delayed(_prep, pure=True)(*parts, exclude=exclude, keep_line=keep_line, block_m=block_m)
         for parts in zip(*cols)
     ]
+
+
+def _index(chunk):
+    return _bbox(chunk), chunk[5]
+
+
+def chunk_index(chunks):
+    """(W, E, S, N, count) of each prepared chunk and its unique block keys, computed once."""
+    found = dask.compute(*[dask.delayed(_index)(c) for c in chunks])
+    boxes = np.array([f[0] for f in found], dtype=np.float64).reshape(-1, 5)
+    return boxes, [f[1] for f in found]
 
 
 def chunk_boxes(chunks) -> np.ndarray:
@@ -80,81 +118,81 @@ def node_axes(boxes: np.ndarray, cell: float, margin: float):
     return np.arange(i0, i1 + 1) * cell, np.arange(j0, j1 + 1) * cell
 
 
-def _tile(node_e, node_n, halo, blank, grid_kw, *chunks):
-    """Grid one tile from the chunks that may touch it (numpy, shape (k, ny, nx))."""
-    k = grid_kw["k"]
-    out = np.full((k, node_n.size, node_e.size), np.nan)
-    if not chunks:
-        return out
-    w, e_ = node_e[0] - halo, node_e[-1] + halo
-    s, n_ = node_n[0] - halo, node_n[-1] + halo
+def _tile_keys(te, tn, halo, block_m):
+    """Block index ranges (bi0, bi1, bj0, bj1) covering a tile and its halo."""
+    bi0, bi1 = (int(np.floor(x / block_m)) for x in (te[0] - halo, te[-1] + halo))
+    bj0, bj1 = (int(np.floor(x / block_m)) for x in (tn[0] - halo, tn[-1] + halo))
+    return bi0, bi1, bj0, bj1
+
+
+def _gather(chunks, te, tn, halo, block_m):
+    """Readings of the chunks within the tile plus halo, in storage order."""
+    bi0, bi1, bj0, bj1 = _tile_keys(te, tn, halo, block_m)
+    w, e_ = te[0] - halo, te[-1] + halo
+    s, n_ = tn[0] - halo, tn[-1] + halo
     parts = []
-    for ce, cn, cv, ct in chunks:
-        sel = (ce >= w) & (ce <= e_) & (cn >= s) & (cn <= n_)
-        if sel.any():
-            parts.append((ce[sel], cn[sel], cv[sel], ct[sel]))
+    for number, (ce, cn, cv, ct, pos, keys, starts) in enumerate(chunks):
+        stops = np.append(starts[1:], ce.size)
+        for bi in range(bi0, bi1 + 1):
+            k0 = (bi + _KEY_OFFSET) * _KEY_SHIFT + bj0 + _KEY_OFFSET
+            k1 = (bi + _KEY_OFFSET) * _KEY_SHIFT + bj1 + _KEY_OFFSET
+            b0, b1 = np.searchsorted(keys, [k0, k1 + 1])
+            if b1 <= b0:
+                continue
+            lo, hi = starts[b0], stops[b1 - 1]
+            sel = slice(lo, hi)
+            inside = (ce[sel] >= w) & (ce[sel] <= e_) & (cn[sel] >= s) & (cn[sel] <= n_)
+            if inside.any():
+                parts.append((ce[sel][inside], cn[sel][inside], cv[sel][inside], ct[sel][inside],
+                              pos[sel][inside] + (number << 40)))
     if not parts:
-        return out
+        return None
     e = np.concatenate([p[0] for p in parts])
     n = np.concatenate([p[1] for p in parts])
     v = np.concatenate([p[2] for p in parts])
     t = np.concatenate([p[3] for p in parts])
+    order = np.argsort(np.concatenate([p[4] for p in parts]))
+    return e[order], n[order], v[order], t[order]
+
+
+def _tile(node_e, node_n, halo, blank, block_m, grid_kw, *chunks):
+    """Grid one tile from the chunks that may touch it (numpy, shape (k, ny, nx))."""
+    k = grid_kw["k"]
+    found = _gather(chunks, node_e, node_n, halo, block_m) if chunks else None
+    if found is None:
+        return np.full((k, node_n.size, node_e.size), np.nan)
+    e, n, v, t = found
     kw = {key: val for key, val in grid_kw.items() if key != "k"}
-    mask = blank_mask(e, n, node_e, node_n, blank)
-    if mask.any():
-        jj, ii = np.nonzero(mask)
-        out[:, jj, ii] = lines.grid_tile(e, n, v, t, node_e[ii], node_n[jj], **kw)
-    return out
+    mask = lattice.blank_lattice(e, n, node_e, node_n, blank)
+    if not mask.any():
+        return np.full((k, node_n.size, node_e.size), np.nan)
+    return lattice.grid_lattice(e, n, v, t, node_e, node_n, where=mask, **kw)
 
 
 def blank_mask(e, n, node_e, node_n, blank: float, where=None) -> np.ndarray:
     """True at nodes within ``blank`` m of a reading (shape (ny, nx)).
 
-    Only the nodes where ``where`` is true (all when None) are tested; the
-    others are false.
+    Only the nodes where ``where`` is true (all when None) can be true.
     """
-    shape = (node_n.size, node_e.size)
-    mask = np.zeros(shape, dtype=bool)
-    if e.size == 0:
-        return mask
-    # Pre-screen on a coarse lattice of cells ``blank`` wide: a node can be
-    # within ``blank`` of a reading only if its coarse cell or a neighbour
-    # holds one (saves the tree query on empty parts of a tile).
-    e0, n0 = node_e[0] - blank, node_n[0] - blank
-    ci = np.floor((e - e0) / blank).astype(np.int64)
-    cj = np.floor((n - n0) / blank).astype(np.int64)
-    nci = int(np.floor((node_e[-1] - e0) / blank)) + 2
-    ncj = int(np.floor((node_n[-1] - n0) / blank)) + 2
-    inside = (ci >= -1) & (ci <= nci) & (cj >= -1) & (cj <= ncj)
-    occupied = np.zeros((ncj + 3, nci + 3), dtype=bool)
-    occupied[cj[inside] + 1, ci[inside] + 1] = True
-    near = occupied.copy()
-    for dj in (-1, 0, 1):
-        for di in (-1, 0, 1):
-            near[1:-1, 1:-1] |= occupied[1 + dj : ncj + 2 + dj, 1 + di : nci + 2 + di]
-    node_ci = np.floor((node_e - e0) / blank).astype(np.int64) + 1
-    node_cj = np.floor((node_n - n0) / blank).astype(np.int64) + 1
-    candidate = near[node_cj[:, None], node_ci[None, :]]
+    mask = lattice.blank_lattice(e, n, node_e, node_n, blank)
     if where is not None:
-        candidate &= where
-    jj, ii = np.nonzero(candidate)
-    tree = cKDTree(np.column_stack([e, n]))
-    if jj.size == 0:
-        return mask
-    dist, _ = tree.query(np.column_stack([node_e[ii], node_n[jj]]), k=1, distance_upper_bound=blank)
-    mask[jj, ii] = dist <= blank
+        mask &= where
     return mask
 
 
-def grid_lines(chunks, boxes, node_e, node_n, tile_cells: int, halo: float, blank: float, grid_kw: dict):
-    """Dask array (k, ny, nx) of the line gridder, one task per tile."""
+def grid_lines(chunks, boxes, keys, node_e, node_n, tile_cells: int, halo: float, blank: float, block_m: float,
+               grid_kw: dict):
+    """Dask array (k, ny, nx) of the line gridder, one task per tile that readings reach,
+    and the (row slice, column slice) of those tiles."""
     k = grid_kw["k"]
-    rows = []
+    rows, reached = [], []
+    held = [np.asarray(x) for x in keys]
     for j in range(0, node_n.size, tile_cells):
         tn = node_n[j : j + tile_cells]
         row = []
         for i in range(0, node_e.size, tile_cells):
             te = node_e[i : i + tile_cells]
+            bi0, bi1, bj0, bj1 = _tile_keys(te, tn, halo, block_m)
             hit = (
                 (boxes[:, 4] > 0)
                 & (boxes[:, 0] <= te[-1] + halo)
@@ -162,14 +200,20 @@ def grid_lines(chunks, boxes, node_e, node_n, tile_cells: int, halo: float, blan
                 & (boxes[:, 2] <= tn[-1] + halo)
                 & (boxes[:, 3] >= tn[0] - halo)
             )
-            use = [chunks[c] for c in np.flatnonzero(hit)]
+            use = []
+            for c in np.flatnonzero(hit):
+                bi = held[c] // _KEY_SHIFT - _KEY_OFFSET
+                bj = held[c] % _KEY_SHIFT - _KEY_OFFSET
+                if np.any((bi >= bi0) & (bi <= bi1) & (bj >= bj0) & (bj <= bj1)):
+                    use.append(chunks[c])
             if use:
-                block = dask.delayed(_tile, pure=True)(te, tn, halo, blank, grid_kw, *use)
+                block = dask.delayed(_tile, pure=True)(te, tn, halo, blank, block_m, grid_kw, *use)
                 row.append(da.from_delayed(block, shape=(k, tn.size, te.size), dtype=np.float64))
+                reached.append((slice(j, j + tn.size), slice(i, i + te.size)))
             else:
-                row.append(da.full((k, tn.size, te.size), np.nan, dtype=np.float64))
+                row.append(da.full((k, tn.size, te.size), np.nan, dtype=np.float64, chunks=(k, tn.size, te.size)))
         rows.append(row)
-    return da.block([[r for r in row] for row in rows]).rechunk((k, tile_cells, tile_cells))
+    return da.block([[r for r in row] for row in rows]).rechunk((k, tile_cells, tile_cells)), reached
 
 
 def grid_delaunay(chunks, node_e, node_n, tile_cells: int, blank: float, method: str, k: int):
@@ -226,3 +270,30 @@ def survey_geometry(readings, segments, keep_line: np.ndarray):
         gaps = gaps[gaps > 0.25 * np.median(gaps)]  # drop near-coincident tracks
     spacing = float(np.median(gaps)) if gaps.size else float("nan")
     return float(np.rad2deg(angle)), spacing
+
+
+def store_grid(grid, folder, tiles=None):
+    """Compute the grid's variables once into zarr stores under ``folder`` and
+    return the grid reading from them. The stores' fill value is NaN; with
+    ``tiles`` (row and column slices) only those parts are computed and
+    written, else all, blank chunks left unwritten."""
+    import zarr
+
+    out = grid.copy()
+    sources, targets, regions, stores = [], [], [], {}
+    for name, var in grid.data_vars.items():
+        arr = var.data
+        chunks = tuple(c[0] for c in arr.chunks) if isinstance(arr, da.Array) else arr.shape
+        z = zarr.create_array(store=str(folder / f"{name}.zarr"), shape=arr.shape, chunks=chunks, dtype="f8",
+                              fill_value=np.nan, overwrite=True)
+        stores[name] = z
+        parts = [tuple(slice(0, n) for n in arr.shape)] if tiles is None else list(tiles)
+        for region in parts:
+            sources.append(arr[region])
+            targets.append(z)
+            regions.append(region)
+    if sources:
+        da.store(sources, targets, regions=regions, lock=False)
+    for name, var in grid.data_vars.items():
+        out[name] = (var.dims, da.from_zarr(stores[name]), var.attrs)
+    return out

@@ -26,7 +26,9 @@ choose ``knot_spacing_m`` at least twice the widest anomaly of interest
 from __future__ import annotations
 
 import numpy as np
+from scipy import sparse
 from scipy.interpolate import BSpline
+from scipy.sparse.linalg import spsolve
 
 from ._levelling_blocks import accepted_mask, along_track
 from ._levelling_median import running_median, window_samples
@@ -41,7 +43,9 @@ def _design(s: np.ndarray, spacing: float) -> tuple[np.ndarray, int]:
     n_int = max(1, int(np.ceil((hi - lo) / spacing)))
     inner = np.linspace(lo, hi, n_int + 1)
     knots = np.concatenate([[lo] * 3, inner, [hi] * 3])
-    basis = BSpline.design_matrix(np.clip(s, lo, hi), knots, 3).toarray()
+    # Sparse: four non-zero basis values per reading, so the normal equations
+    # are banded and cost O(readings), not O(readings x knots^2).
+    basis = BSpline.design_matrix(np.clip(s, lo, hi), knots, 3).tocsr()
     return basis, basis.shape[1]
 
 
@@ -61,9 +65,9 @@ def robust_trend(s: np.ndarray, v: np.ndarray, knot_spacing_m: float, robust_mul
     basis, m = _design(s, knot_spacing_m)
     if m < 4:
         return start
-    d2 = np.diff(np.eye(m), 2, axis=0)
+    d2 = sparse.diags([1.0, -2.0, 1.0], [0, 1, 2], shape=(m - 2, m))
     per_interval = n / max(1, m - 3)
-    pen = penalty * per_interval * (d2.T @ d2)
+    pen = (penalty * per_interval * (d2.T @ d2)).tocsc()
     fit = start
     for _ in range(iterations):
         r = v - fit
@@ -72,10 +76,12 @@ def robust_trend(s: np.ndarray, v: np.ndarray, knot_spacing_m: float, robust_mul
             break
         u = r / (robust_multiple * scale)
         w = np.where(np.abs(u) < 1.0, (1.0 - u * u) ** 2, 0.0)
-        bw = basis * w[:, None]
+        bw = basis.multiply(w[:, None]).tocsr()
         try:
-            coef = np.linalg.solve(basis.T @ bw + pen, bw.T @ v)
-        except np.linalg.LinAlgError:
+            coef = spsolve((basis.T @ bw + pen).tocsc(), bw.T @ v)
+        except (np.linalg.LinAlgError, RuntimeError):
+            break
+        if not np.all(np.isfinite(coef)):  # singular system (spsolve warns and returns NaN)
             break
         new = basis @ coef
         done = np.max(np.abs(new - fit)) < 1e-4 * max(scale, 1e-12)

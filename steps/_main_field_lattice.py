@@ -6,8 +6,12 @@ readings. The main field is very smooth over a survey area, so it is
 evaluated once on a coarse regular lattice of easting, northing, elevation
 (survey CRS, metres) and time, and each reading gets the
 quadrilinear interpolation of the lattice values (linear along each of the
-four axes; Press et al. 2007, section 3.6, from memory), with
-:class:`scipy.interpolate.RegularGridInterpolator`.
+four axes; Press et al. 2007, section 3.6, from memory). The interpolation
+is a small compiled loop (numba, a dependency of harmonica): readings come
+in time and space order, so each reading's lattice cell is looked for first
+where the previous reading's was; it gives the numbers of
+:class:`scipy.interpolate.RegularGridInterpolator` (``method="linear"``,
+NaN outside the lattice), which the tests use as the reference.
 
 Error
     For linear interpolation between nodes ``h`` apart the error is at most
@@ -50,9 +54,11 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import math
+
+import numba
 import numpy as np
 import pyproj
-from scipy.interpolate import RegularGridInterpolator
 
 from . import _main_field_igrf as igrf
 
@@ -69,9 +75,6 @@ __all__ = [
 
 _NAT = np.iinfo(np.int64).min
 
-#: Readings interpolated at once inside a block (bounds the temporary arrays
-#: to a few MB whatever the chunk size, and faster than larger slices).
-_SLICE = 1 << 16
 
 
 @dataclass(frozen=True)
@@ -205,6 +208,85 @@ def build_lattice(
     return Lattice(east, north, elev, time, values.reshape(ee.shape + (time.size,)))
 
 
+@numba.njit(cache=True, nogil=True)
+def _cell(axis, x, guess):
+    """Index i of the cell [axis[i], axis[i + 1]] holding x (-1 outside or NaN), looked for from ``guess``."""
+    n = axis.size
+    if not (axis[0] <= x <= axis[n - 1]):
+        return -1
+    if 0 <= guess < n - 1 and axis[guess] <= x <= axis[guess + 1]:
+        return guess
+    lo, hi = 0, n - 1
+    while hi - lo > 1:
+        mid = (lo + hi) // 2
+        if axis[mid] <= x:
+            lo = mid
+        else:
+            hi = mid
+    return lo
+
+
+@numba.njit(cache=True, nogil=True)
+def _quadrilinear(e, n, z, t_ns, t0_ns, nat, ax_e, ax_n, ax_z, ax_t, values, out):
+    ie = jn = kz = lt = 0
+    cell = (-1, -1, -1, -1)
+    # The 8 spatial corners at the two times, and the cell's reciprocal widths,
+    # kept while consecutive readings stay in one cell.
+    c0 = np.empty(8)
+    c1 = np.empty(8)
+    re = rn = rz = rt = 0.0
+    for r in range(e.size):
+        if t_ns[r] == nat:
+            out[r] = np.nan
+            continue
+        t = (t_ns[r] - t0_ns) * 1e-9
+        x, y, h = e[r], n[r], z[r]
+        # fast path: the previous reading's cell (the search only on a miss)
+        if not (ax_e[ie] <= x <= ax_e[ie + 1]):
+            ie = _cell(ax_e, x, ie)
+        if not (ax_n[jn] <= y <= ax_n[jn + 1]):
+            jn = _cell(ax_n, y, jn)
+        if not (ax_z[kz] <= h <= ax_z[kz + 1]):
+            kz = _cell(ax_z, h, kz)
+        if not (ax_t[lt] <= t <= ax_t[lt + 1]):
+            lt = _cell(ax_t, t, lt)
+        if ie < 0 or jn < 0 or kz < 0 or lt < 0:
+            out[r] = np.nan
+            ie = max(ie, 0)
+            jn = max(jn, 0)
+            kz = max(kz, 0)
+            lt = max(lt, 0)
+            continue
+        if cell != (ie, jn, kz, lt):
+            cell = (ie, jn, kz, lt)
+            q = 0
+            for a in range(2):
+                for b in range(2):
+                    for c in range(2):
+                        c0[q] = values[ie + a, jn + b, kz + c, lt]
+                        c1[q] = values[ie + a, jn + b, kz + c, lt + 1]
+                        q += 1
+            re = 1.0 / (ax_e[ie + 1] - ax_e[ie])
+            rn = 1.0 / (ax_n[jn + 1] - ax_n[jn])
+            rz = 1.0 / (ax_z[kz + 1] - ax_z[kz])
+            rt = 1.0 / (ax_t[lt + 1] - ax_t[lt])
+        we = (x - ax_e[ie]) * re
+        wn = (y - ax_n[jn]) * rn
+        wz = (h - ax_z[kz]) * rz
+        wt = (t - ax_t[lt]) * rt
+        acc = 0.0
+        q = 0
+        for a in range(2):
+            fa = we if a else 1.0 - we
+            for b in range(2):
+                fb = fa * (wn if b else 1.0 - wn)
+                for c in range(2):
+                    fc = fb * (wz if c else 1.0 - wz)
+                    acc += fc * (c0[q] + wt * (c1[q] - c0[q]))
+                    q += 1
+        out[r] = acc
+
+
 def interpolate(easting, northing, elevation, time, *, lattice: Lattice) -> np.ndarray:
     """Main-field total intensity at readings, by interpolation in the lattice.
 
@@ -225,26 +307,22 @@ def interpolate(easting, northing, elevation, time, *, lattice: Lattice) -> np.n
     ndarray of float
         Total field, nT; NaN where a coordinate is NaN or outside the lattice.
     """
-    easting = np.asarray(easting, dtype=np.float64)
+    easting = np.ascontiguousarray(easting, dtype=np.float64)
     out = np.empty(easting.shape, dtype=np.float64)
     if easting.size == 0:
         return out
-    t0 = lattice.time[0].astype(np.int64)
-    table = RegularGridInterpolator(
-        lattice.axes, lattice.values, method="linear", bounds_error=False, fill_value=np.nan
+    t = np.ascontiguousarray(np.asarray(time).astype("datetime64[ns]").astype(np.int64))
+    _quadrilinear(
+        easting.ravel(),
+        np.ascontiguousarray(northing, dtype=np.float64).ravel(),
+        np.ascontiguousarray(elevation, dtype=np.float64).ravel(),
+        t.ravel(),
+        np.int64(lattice.time[0].astype(np.int64)),
+        _NAT,
+        *(np.ascontiguousarray(a, dtype=np.float64) for a in lattice.axes),
+        np.ascontiguousarray(lattice.values, dtype=np.float64),
+        out.ravel(),
     )
-    for lo in range(0, easting.size, _SLICE):
-        hi = min(lo + _SLICE, easting.size)
-        points = np.empty((hi - lo, 4))
-        points[:, 0] = easting[lo:hi]
-        points[:, 1] = northing[lo:hi]
-        points[:, 2] = elevation[lo:hi]
-        t = np.asarray(time[lo:hi]).astype("datetime64[ns]").astype(np.int64)
-        points[:, 3] = np.where(t == _NAT, np.nan, (t - t0) / 1e9)
-        bad = ~np.isfinite(points).all(axis=1)
-        points[bad] = [a[0] for a in lattice.axes]
-        out[lo:hi] = table(points)
-        out[lo:hi][bad] = np.nan
     return out
 
 

@@ -81,6 +81,7 @@ from __future__ import annotations
 
 import warnings
 
+import dask
 import dask.array as da
 import numpy as np
 import xarray as xr
@@ -95,6 +96,9 @@ __all__ = ["PARAMS", "STAGE", "run", "enhance"]
 
 #: Tile size used when the input grid is not chunked, cells.
 DEFAULT_TILE = 512
+
+#: Largest side of a quick-look image, cells (the grid is decimated to it).
+QUICKLOOK_PIXELS = 2000
 
 PARAMS = (
     Param("products", list(PRODUCTS), "Grids to compute.", kind=list, item_kind=str, choices=PRODUCTS, minimum=1),
@@ -141,6 +145,18 @@ def _direction(grid: xr.Dataset, settings: dict) -> tuple[float, float]:
     return float(inc), float(dec)
 
 
+def _tile_products(values, cut, products, spacing, pad_fraction, upward_m, field_dir, stabilise_below_deg,
+                   blank_taper_cells):
+    """Products of one tile with its halo, the halo cut off again."""
+    out = filter_tile(values, products, spacing, pad_fraction, upward_m, field_dir, None, stabilise_below_deg,
+                      blank_taper_cells)
+    return out[:, cut[0], cut[1]]
+
+
+def _finite_count(block):
+    return np.array([[np.isfinite(block).sum()]], dtype=np.int64)
+
+
 def enhance(
     residual: da.Array,
     spacing: tuple[float, float],
@@ -151,8 +167,14 @@ def enhance(
     field_dir: tuple[float, float],
     stabilise_below_deg: float,
     blank_taper_cells: int,
-) -> da.Array:
+    details: bool = False,
+):
     """Products of a chunked residual grid, tile by tile with a halo.
+
+    Each tile with data is cut from the residual with a halo of
+    ``halo_cells`` of its neighbours (none beyond the grid edge), filtered
+    and cut back; tiles without a valid cell give NaN without a task (a
+    survey along a diagonal corridor leaves most tiles of its grid empty).
 
     Parameters
     ----------
@@ -162,6 +184,10 @@ def enhance(
         Signed cell steps along (northing, easting), m.
     products, halo_cells, pad_fraction, upward_m, field_dir, stabilise_below_deg, blank_taper_cells
         As the stage parameters (see :data:`PARAMS`).
+    details : bool
+        Also return a dict: ``tiles`` (list of (row slice, column slice,
+        dask array of the tile's products) for the tiles with data) and
+        ``valid_cells`` (finite residual cells).
 
     Returns
     -------
@@ -170,33 +196,57 @@ def enhance(
     """
     chunks = residual.chunks
     work = residual
-    # every tile must be at least as large as the halo (a dask overlap rule)
+    # every tile at least as large as the halo (short edge tiles are merged into their neighbour)
     if any(min(c) < halo_cells and len(c) > 1 for c in chunks):
         work = residual.rechunk(tuple(_tiles(n, max(c[0], halo_cells), halo_cells) for c, n in zip(chunks, residual.shape)))
     depth = {0: min(halo_cells, work.shape[0]), 1: min(halo_cells, work.shape[1])}
     depth = {a: (d if len(work.chunks[a]) > 1 else 0) for a, d in depth.items()}
-    padded = da.overlap.overlap(work, depth=depth, boundary="none") if any(depth.values()) else work
+    counts = da.map_blocks(_finite_count, work, chunks=tuple((1,) * len(c) for c in work.chunks), dtype=np.int64).compute()
+    ybounds = np.cumsum((0,) + tuple(work.chunks[0]))
+    xbounds = np.cumsum((0,) + tuple(work.chunks[1]))
+    ny, nx = work.shape
+    p = len(products)
+    rows, tiles = [], []
+    for bj in range(len(work.chunks[0])):
+        y0, y1 = int(ybounds[bj]), int(ybounds[bj + 1])
+        row = []
+        for bi in range(len(work.chunks[1])):
+            x0, x1 = int(xbounds[bi]), int(xbounds[bi + 1])
+            if counts[bj, bi] == 0:
+                row.append(da.full((p, y1 - y0, x1 - x0), np.nan, dtype=np.float64, chunks=(p, y1 - y0, x1 - x0)))
+                continue
+            ys0, ys1 = max(0, y0 - depth[0]), min(ny, y1 + depth[0])
+            xs0, xs1 = max(0, x0 - depth[1]), min(nx, x1 + depth[1])
+            cut = (slice(y0 - ys0, y0 - ys0 + (y1 - y0)), slice(x0 - xs0, x0 - xs0 + (x1 - x0)))
+            task = dask.delayed(_tile_products, pure=True)(
+                work[ys0:ys1, xs0:xs1], cut, products, spacing, pad_fraction, upward_m, field_dir,
+                stabilise_below_deg, blank_taper_cells,
+            )
+            block = da.from_delayed(task, shape=(p, y1 - y0, x1 - x0), dtype=np.float64)
+            row.append(block)
+            tiles.append((slice(y0, y1), slice(x0, x1), block))
+        rows.append(row)
+    stack = da.block([[r for r in row] for row in rows]).rechunk(((1,) * p,) + chunks)
+    if details:
+        return stack, {"tiles": tiles, "valid_cells": int(counts.sum())}
+    return stack
 
-    def block(values, block_info=None):
-        where = block_info[None]
-        loc, num = where["chunk-location"], where["num-chunks"]
-        out = filter_tile(values, products, spacing, pad_fraction, upward_m, field_dir, None, stabilise_below_deg, blank_taper_cells)
-        cut = []
-        for axis, d in ((1, depth[0]), (2, depth[1])):
-            start = d if loc[axis] > 0 else 0
-            stop = out.shape[axis] - (d if loc[axis] < num[axis] - 1 else 0)
-            cut.append(slice(start, stop))
-        return out[:, cut[0], cut[1]]
 
-    stack = da.map_blocks(
-        block,
-        padded,
-        new_axis=0,
-        chunks=((len(products),),) + work.chunks,
-        dtype=np.float64,
-        meta=np.empty((0, 0, 0)),
-    )
-    return stack.rechunk(((1,) * len(products),) + chunks)
+def _decimated(tiles, shape, stride):
+    """Every ``stride``-th cell of the products (for the quick looks), assembled from the tiles with data."""
+    parts = []
+    for rows, cols, block in tiles:
+        first_y, first_x = (-rows.start) % stride, (-cols.start) % stride
+        parts.append(((rows.start + first_y) // stride, (cols.start + first_x) // stride,
+                      block[:, first_y::stride, first_x::stride]))
+    return parts
+
+
+def _assemble(parts, p, shape, stride):
+    out = np.full((p, -(-shape[0] // stride), -(-shape[1] // stride)), np.nan)
+    for j, i, values in parts:
+        out[:, j : j + values.shape[1], i : i + values.shape[2]] = values
+    return out
 
 
 def _tiles(n: int, size: int, minimum: int) -> tuple[int, ...]:
@@ -252,7 +302,7 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     residual = grid["residual"].data
     if not isinstance(residual, da.Array):
         residual = da.from_array(np.asarray(residual, dtype=float), chunks=(DEFAULT_TILE, DEFAULT_TILE))
-    stack = enhance(
+    stack, found = enhance(
         residual.astype(np.float64),
         spacing,
         products,
@@ -262,10 +312,35 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
         field_dir,
         limit,
         settings["blank_taper_cells"],
+        details=True,
     )
+    # One pass over the tiles with data: the product store (NaN fill value, so
+    # empty tiles are not written), the range of each product and the
+    # decimated copies for the quick looks.
+    import zarr
+
     store = context.scratch / "enhancement_products.zarr"
-    stack.to_zarr(str(store), overwrite=True)
-    stored = da.from_zarr(str(store))
+    target = zarr.create_array(store=str(store), shape=stack.shape, chunks=tuple(c[0] for c in stack.chunks),
+                               dtype="f8", fill_value=np.nan, overwrite=True)
+    stride = max(1, int(np.ceil(max(residual.shape) / QUICKLOOK_PIXELS)))
+    with warnings.catch_warnings():
+        # Tiles whose own cells are all blank give an all-NaN warning; the range ignores them.
+        warnings.simplefilter("ignore", RuntimeWarning)
+        # Only the tiles with data are written (the others stay at the NaN fill value).
+        sources = [b[i : i + 1] for _, _, b in found["tiles"] for i in range(len(products))]
+        regions = [(slice(i, i + 1), ys, xs) for ys, xs, _ in found["tiles"] for i in range(len(products))]
+        _, tile_ranges, small = dask.compute(
+            da.store(sources, [target] * len(sources), regions=regions, lock=False, compute=False) if sources else [],
+            [(da.nanmin(b, axis=(1, 2)), da.nanmax(b, axis=(1, 2))) for _, _, b in found["tiles"]],
+            _decimated(found["tiles"], residual.shape, stride) if settings["quicklook"] else [],
+        )
+    stored = da.from_zarr(target)
+    if tile_ranges:
+        lows = np.nanmin(np.array([lo for lo, _ in tile_ranges]), axis=0)
+        highs = np.nanmax(np.array([hi for _, hi in tile_ranges]), axis=0)
+    else:
+        lows = highs = np.full(len(products), np.nan)
+    ranges = list(zip(lows, highs))
 
     common = {
         "halo_cells": settings["halo_cells"],
@@ -291,19 +366,24 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     out.attrs = {**grid.attrs, "enhancement_products": list(products)}
 
     files = {}
+    quick = _assemble(small, len(products), residual.shape, stride) if settings["quicklook"] else None
     for name in products:
         if settings["geotiff"]:
             path = write_geotiff(out[name], grid.attrs["crs_wkt"], context.scratch / f"{name}.tif")
             files[path.name] = path
         if settings["quicklook"]:
-            path = write_quicklook(out[name], context.scratch / f"{name}.png")
+            # At most QUICKLOOK_PIXELS a side, like the gridding quick looks: a picture, not the data.
+            look = xr.DataArray(
+                quick[products.index(name)],
+                dims=("northing", "easting"),
+                coords={"northing": grid["northing"].values[::stride], "easting": grid["easting"].values[::stride]},
+                attrs=out[name].attrs,
+                name=name,
+            )
+            path = write_quicklook(look, context.scratch / f"{name}.png")
             files[path.name] = path
 
-    with warnings.catch_warnings():
-        # Tiles that are wholly blanked give an all-NaN slice warning per tile; the range ignores them.
-        warnings.simplefilter("ignore", RuntimeWarning)
-        ranges = da.compute(*[(da.nanmin(stored[i]), da.nanmax(stored[i])) for i in range(len(products))])
-    n_valid = int(np.isfinite(grid["residual"].data).sum().compute()) if isinstance(grid["residual"].data, da.Array) else int(np.isfinite(grid["residual"].values).sum())
+    n_valid = found["valid_cells"]
     summary = {
         "products": list(products),
         "inclination_deg": field_dir[0],

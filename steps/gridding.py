@@ -130,23 +130,30 @@ def grid_readings(readings: xr.Dataset, segments: xr.Dataset, params: dict, log=
     reach = 2.0 * blank
     max_gap = blank
     halo = reach + max_gap + 2.0 * cell
-    chunks = tiles.prepared_chunks(readings, params["variables"], exclude, keep)
-    boxes = tiles.chunk_boxes(chunks)
+    tc = int(params["tile_cells"])
+    lines_method = params["method"] == "lines"
+    # Blocks a quarter of a tile wide index the readings of each chunk (see _gridding_tiles).
+    block_m = max(tc * cell / 4.0, halo) if lines_method else None
+    chunks = tiles.prepared_chunks(readings, params["variables"], exclude, keep, block_m=block_m)
+    if lines_method:
+        boxes, keys = tiles.chunk_index(chunks)
+    else:
+        boxes = tiles.chunk_boxes(chunks)
     used = int(boxes[:, 4].sum())
     if used == 0:
         raise DataError("gridding: no accepted readings (check exclude_flags and the flags of earlier stages)")
     node_e, node_n = tiles.node_axes(boxes, cell, blank)
     k = len(params["variables"])
-    tc = int(params["tile_cells"])
-    if params["method"] == "lines":
+    if lines_method:
         grid_kw = dict(k=k, angle_deg=angle, reach_m=reach, max_gap_m=max_gap, min_sep_m=cell / 2,
                        across=params["across"])
-        stack = tiles.grid_lines(chunks, boxes, node_e, node_n, tc, halo, blank, grid_kw)
+        stack, reached = tiles.grid_lines(chunks, boxes, keys, node_e, node_n, tc, halo, blank, block_m, grid_kw)
     else:
         if used > DELAUNAY_WARN and log is not None:
             log.warning("gridding: method %r holds all %d accepted readings in memory; use 'lines' for large surveys",
                         params["method"], used)
         stack = tiles.grid_delaunay(chunks, node_e, node_n, tc, blank, params["method"], k)
+        reached = None
     attrs = {key: readings.attrs[key] for key in COPIED_ATTRS if key in readings.attrs}
     accepted = (readings["flags"] & np.uint32(exclude)) == 0
     # The grid is treated as a level surface at the mean sensor elevation (m, up);
@@ -189,6 +196,7 @@ def grid_readings(readings: xr.Dataset, segments: xr.Dataset, params: dict, log=
         "readings_left_out": total - used,
         "cells": int(node_e.size * node_n.size),
         "shape": [int(node_n.size), int(node_e.size)],
+        "_tiles": reached,  # tiles that readings reach (lines method), for the stage's store
     }
     return grid, info
 
@@ -199,10 +207,17 @@ def run(data: dict, params: dict, context) -> StageResult:
     readings, segments = upstream["readings"], upstream["segments"]
     t0 = time.perf_counter()
     grid, info = grid_readings(readings, segments, params, context.log)
-    grid = grid.persist() if info["cells"] * len(params["variables"]) <= 20_000_000 else grid
+    # Computed once into the scratch folder; the counts, files and the stage output read from there.
+    grid = tiles.store_grid(grid, context.scratch, info.pop("_tiles"))
     seconds = time.perf_counter() - t0
     first = grid[params["variables"][0]]
     filled = int(np.isfinite(first.data).sum().compute())
+    if filled == 0:
+        raise DataError(
+            f"gridding: no grid cell could be filled from the {info['readings_used']} accepted reading(s) "
+            f"(cell {info['cell_size_m']:g} m, blank_distance_m {info['blank_distance_m']:g} m): a grid needs tracks "
+            "of several readings; check the readings kept by the earlier stages or raise gridding.blank_distance_m"
+        )
     out_files = {}
     for name in params["variables"]:
         if params["geotiff"]:
