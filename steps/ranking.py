@@ -111,8 +111,8 @@ PARAMS = (
     Param("weight_mass", 0.4, "Weight of the size (upper mass) term of the score.", minimum=0.0),
     Param("snr_full", 1000.0, "Signal-to-noise ratio at which the snr term reaches 1.", minimum=1.0, exclusive_minimum=True),
     Param("mass_full_kg", 1000.0, "Upper mass at which the size term reaches 1, kg.", minimum=0.0, exclusive_minimum=True),
-    Param("merge_distance_m", 0.5, "Fitted sources of different picks closer than this horizontally are one target, m.", minimum=0.0),
-    Param("merge_depth_m", 0.5, "... and closer than this in depth, m.", minimum=0.0),
+    Param("merge_distance_m", 0.75, "Fitted sources of different picks closer than this horizontally are one target, m (about a fifth of the sensor-to-item distance: closer items are not resolved).", minimum=0.0),
+    Param("merge_depth_m", 0.75, "... and closer than this in depth, m.", minimum=0.0),
     Param("min_snr", 5.0, "A fitted compact target is confirmed only when its peak anomaly is at least this multiple of the residual noise.",
           minimum=0.0),
     Param("min_burial_m", -1.0, "A fitted compact target is confirmed only when it lies no higher than this below the seabed, m "
