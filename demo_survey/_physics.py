@@ -19,6 +19,9 @@ Jackson, J. D. (1999). Classical Electrodynamics, 3rd edition. Wiley,
     chapter 5. (Magnetisation of a permeable sphere in a uniform field.)
 IAGA Working Group V-MOD (2024). International Geomagnetic Reference Field,
     14th generation (IGRF-14). Coefficients as distributed with ``ppigrf``.
+Weaver, J. T. (1965). Magnetic variations associated with ocean waves and
+    swell. Journal of Geophysical Research 70(8), 1921-1929. (From memory;
+    why swell noise is narrow-band, see :func:`narrow_band_noise`.)
 """
 
 from __future__ import annotations
@@ -99,6 +102,36 @@ def smooth_signal(rng, rms, periods_s, components=6):
     else:
         amp[:] = 0.0
     return SmoothSignal(amp, 2 * np.pi / period, phase)
+
+
+def narrow_band_noise(rng, rms, periods_s, components=12):
+    """Draw a swell-like narrow-band noise signal of one sensor on one line.
+
+    Ocean swell disturbs a marine magnetometer record in a narrow band of
+    periods of several seconds, through the magnetic field of the seawater
+    moving in the main field and through the wave motion of the sensor in
+    the field's gradient (Weaver 1965, Magnetic variations associated with
+    ocean waves and swell, J. Geophys. Res. 70; quoted from memory). The
+    demo models it as :func:`smooth_signal` with many components whose
+    periods are confined to ``periods_s`` and random phases: stationary,
+    zero mean, RMS ``rms`` (common practice, no published source).
+
+    Parameters
+    ----------
+    rng : numpy.random.Generator
+    rms : float
+        Root-mean-square value, nT (0 gives a signal that is zero).
+    periods_s : sequence of two floats
+        Shortest and longest period, s.
+    components : int
+        Number of sinusoids.
+
+    Returns
+    -------
+    SmoothSignal
+        Takes the time since the line's first epoch, s.
+    """
+    return smooth_signal(rng, rms, periods_s, components)
 
 
 # --------------------------------------------------------------------------

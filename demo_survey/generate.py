@@ -22,14 +22,17 @@ the antenna, where a towed bar follows, moved across that track's course by
 the sensor offset), and is::
 
     field = |F(x, t) + b(x)| + G(x) + D(t) + a_i + b_i cos h + c_i sin h
-            + o_i + r_i (t - t0) + noise (+ spikes, dropouts)
+            + o_i + r_i (t - t0) + noise + swell_i(t) (+ spikes, dropouts)
 
 ``F`` is the IGRF-14 main-field vector (IAGA Working Group V-MOD 2024),
 ``b`` the field of all buried items and of a deep basement body, modelled as
 magnetic point dipoles (Blakely 1995), ``G`` a smooth regional geology field
 (plane harmonic waves continued upward, Blakely 1995), ``D`` the external
 (diurnal) variation, ``h`` the course heading, and the remaining terms the
-per-sensor heading error, offset and linear drift. Induced moments follow the
+per-sensor heading error, offset and linear drift; ``noise`` is white and
+``swell_i`` an optional narrow-band (swell-like) noise of its own for each
+sensor and line (``[sensors] swell_nT``, 0 by default; the noise figure of the
+readings is then ``sqrt(noise_nT^2 + swell_nT^2)``). Induced moments follow the
 permeable-sphere moment ``3 V B0 / mu0`` (Jackson 1999) times shape factors;
 about 30 % of compact items carry remanence. Positions are recorded for the
 antenna at the recorded time, depth and altitude at the recorded time.
@@ -392,6 +395,7 @@ def write_line(world, line, events, path):
     cfg, arr = world.cfg, world.array
     seeds = np.random.SeedSequence([cfg["scenario"]["seed"], 1000 + line.index]).spawn(4)
     r_field, r_depth, r_alt, r_gnss = (np.random.default_rng(s) for s in seeds)
+    swell = swell_signals(world, line)
     step_ms = int(round(1000 / arr.rate))
     mine = [ev for ev in events if ev["line"] is line]
     with open(path, "wb") as raw, gzip.GzipFile(filename="", mode="wb", fileobj=raw, compresslevel=6,
@@ -403,6 +407,8 @@ def write_line(world, line, events, path):
             t_rec = ms / 1000.0
             field = field_readings(world, line, t_rec - arr.lag)
             field += r_field.normal(0.0, cfg["sensors"]["noise_nT"], field.shape)
+            for j, signal in enumerate(swell):
+                field[:, j] += signal(t_rec - arr.lag - line.t_start)
             for ev in mine:
                 lo, hi = max(ev["k0"] - k0, 0), min(ev["k1"] - k0, k.size)
                 if lo < hi and ev["kind"] == "dropout":
@@ -417,6 +423,36 @@ def write_line(world, line, events, path):
             lon, lat = world.to_lonlat.transform(ae + r_gnss.normal(0, gn, k.size), an + r_gnss.normal(0, gn, k.size))
             fh.write(format_rows(iso_times(world, ms), lon, lat, arr.names, line.name, depth, alt, field))
     return line.n_epochs * len(arr.names)
+
+
+def swell_signals(world, line):
+    """Narrow-band (swell-like) noise signals of the sensors on one line.
+
+    One independent signal per sensor (``_physics.narrow_band_noise``) with
+    RMS ``[sensors] swell_nT`` and periods in ``swell_period_s``, drawn from a
+    generator of its own for the line, so the other noise of the readings is
+    the same with or without swell. None when ``swell_nT`` is 0 or absent.
+
+    Returns
+    -------
+    list of _physics.SmoothSignal
+        One per sensor (empty list without swell); each takes the time since
+        the line's first epoch, s.
+    """
+    s = world.cfg["sensors"]
+    rms = float(s.get("swell_nT", 0.0))
+    if rms <= 0:
+        return []
+    rng = np.random.default_rng(np.random.SeedSequence([world.cfg["scenario"]["seed"], 3000 + line.index]))
+    periods = s.get("swell_period_s", [6.0, 10.0])
+    count = int(s.get("swell_components", 12))
+    return [phys.narrow_band_noise(rng, rms, periods, count) for _ in world.array.names]
+
+
+def noise_figure(cfg):
+    """Noise figure of the readings, nT: ``sqrt(noise_nT^2 + swell_nT^2)`` (white and swell RMS)."""
+    s = cfg["sensors"]
+    return float(np.hypot(s["noise_nT"], s.get("swell_nT", 0.0)))
 
 
 # --------------------------------------------------------------------------
@@ -549,11 +585,12 @@ def generate(config: dict, out_dir: Path, scale: float = 1.0) -> dict:
     tgt.write_truth(targets, out_dir / "truth.csv")
     tgt.write_seeds(seeds, out_dir / "seeds.csv")
     write_events(world, events, base, out_dir / "qc_events.csv")
-    noise = config["sensors"]["noise_nT"]
+    noise = noise_figure(config)
     compact = targets["kind"].isin(["point", "cluster_member"])
     rate = world.array.rate
     return dict(
         readings=n_readings,
+        noise_nT=noise,
         lines=[ln.name for ln in lines],
         truth_rows=len(targets),
         compact_items=int(compact.sum()),
@@ -584,7 +621,7 @@ def main(argv=None):
     parser.add_argument("--scale", type=float, default=1.0, help="multiplies the route length (default 1)")
     args = parser.parse_args(argv)
     s = generate(load_config(args.config), args.out, args.scale)
-    noise = load_config(args.config)["sensors"]["noise_nT"]
+    noise = s["noise_nT"]
     print(f"readings: {s['readings']}  lines: {len(s['lines'])}  truth rows: {s['truth_rows']}")
     print(f"compact items: {s['compact_items']}  with predicted peak >= {10 * noise:g} nT (10 x noise): "
           f"{s['compact_detectable']}  below noise ({noise:g} nT): {s['compact_below_noise']}")
