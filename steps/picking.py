@@ -183,7 +183,7 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
         raise DataError("picking.detector_depths_m must be a non-empty list of positive depths in metres, e.g. [2.5, 3.5, 4.5]")
     grid = data["enhancement"]["grid"]
     validate_grid(grid, where="picking")
-    need = ["residual"] + ([*DERIVATIVES] if s["pick_on"] != "abs_residual" else [])
+    need = ["residual"] + (["total_gradient_amplitude", *DERIVATIVES] if s["pick_on"] != "abs_residual" else [])
     missing = [v for v in need if v not in grid.data_vars]
     if missing:
         raise DataError(f"picking: the enhancement grid lacks {', '.join(missing)}; add them to enhancement.products and rerun")

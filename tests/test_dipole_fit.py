@@ -207,7 +207,7 @@ def test_close_sources_fitted_jointly(tmp_path):
     src = np.array([[29.0, 10.0, -12.3], [31.0, 10.5, -12.3]])
     ds, _ = make_readings(src, [induced(3.0), induced(3.0)], noise=0.05)
     picks = picks_table([[1, 29.2, 10.0, "point", 1, 1], [2, 30.8, 10.4, "point", 1, 1]])
-    single = run_stage(tmp_path, ds, picks, max_joint=1).tables["dipoles"]
+    single = run_stage(tmp_path, ds, picks, max_joint=1, second_source=False).tables["dipoles"]
     joint = run_stage(tmp_path, ds, picks).tables["dipoles"]
     assert (single["fit_r2"] < 0.95).all()  # the threshold joint_r2_below must be crossed for this test to mean anything
     assert (joint["joint_group"] == 0).all() and joint["note"].str.startswith("fitted jointly").all()
@@ -217,6 +217,23 @@ def test_close_sources_fitted_jointly(tmp_path):
         assert abs(row["elevation_m"] - s[2]) < 0.1
         assert abs(row["moment_Am2"] - 3.0) / 3.0 < 0.05
     assert joint["fit_r2"].min() > 0.99
+
+
+def test_second_source_found_from_one_pick(tmp_path):
+    # the same two dipoles 2 m apart but only one pick: the second-source trial finds the other (F test)
+    src = np.array([[29.0, 10.0, -12.3], [31.0, 10.5, -12.3]])
+    ds, _ = make_readings(src, [induced(3.0), induced(3.0)], noise=0.05)
+    picks = picks_table([[1, 29.2, 10.0, "point", 1, 1]])
+    out = run_stage(tmp_path, ds, picks).tables["dipoles"]
+    assert len(out) == 2 and out["note"].str.contains("second source").all()
+    # 0.1 m and 5 %: as for the joint fit above (the same readings and model)
+    for s in src:
+        d = np.hypot(out["easting_m"] - s[0], out["northing_m"] - s[1])
+        row = out.loc[d.idxmin()]
+        assert d.min() < 0.1 and abs(row["elevation_m"] - s[2]) < 0.1
+        assert abs(row["moment_Am2"] - 3.0) / 3.0 < 0.05
+    off = run_stage(tmp_path, ds, picks, second_source=False).tables["dipoles"]
+    assert len(off) == 1
 
 
 def test_bad_input_is_refused(tmp_path):
