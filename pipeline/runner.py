@@ -12,6 +12,7 @@ in = readings out + readings rejected.
 from __future__ import annotations
 
 import contextlib
+import errno
 import importlib
 import inspect
 import logging
@@ -32,7 +33,7 @@ from .config import ConfigError, SurveyConfig, expand_files
 from .model import FLAGS, READING_DIM, Stage, StageContext, StageResult, segment_chunks, validate_grid, validate_readings
 from .params import ParameterError, validate_table
 from .progress import make_progress, dask_progress
-from .store import RunStore, hash_file, hash_json
+from .store import RunFolderError, RunStore, hash_file, hash_json
 
 __all__ = ["discover_stages", "plan_run", "stage_status", "run_survey", "StagePlan", "load_stage_data"]
 
@@ -300,9 +301,43 @@ class _ConsoleHandler(logging.StreamHandler):
             self.handleError(record)
 
 
+class _RunLogHandler(logging.FileHandler):
+    """The run log; a line that cannot be written (disk full) is dropped
+    instead of printing a logging traceback on the terminal: the run stops
+    with its own one-line error when the stage outputs cannot be written."""
+
+    def handleError(self, record):
+        if isinstance(sys.exc_info()[1], OSError):
+            return
+        super().handleError(record)
+
+
+#: errno values that mean the run folder cannot be written (disk full, quota, read-only, permissions).
+_WRITE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM}
+
+
+def _run_folder_error(err: OSError, folder: Path) -> RunFolderError | None:
+    """A one-line :class:`RunFolderError` for an OSError met while writing
+    the run folder, or None when the error is about something else (an
+    input file outside the run folder, for example)."""
+    if isinstance(err, RunFolderError) or err.errno not in _WRITE_ERRNOS:
+        return None
+    name = getattr(err, "filename", None)
+    if name is not None and err.errno not in (errno.ENOSPC, errno.EDQUOT):
+        try:
+            Path(name).resolve().relative_to(Path(folder).resolve())
+        except (ValueError, OSError):
+            return None
+    what = "free space on its disk" if err.errno in (errno.ENOSPC, errno.EDQUOT) else "fix its permissions"
+    return RunFolderError(
+        f"{folder}: cannot write to the run folder ({err.strerror or os.strerror(err.errno)}): {what} or choose another "
+        "[run] folder, then run again (finished stages are kept)"
+    )
+
+
 def _setup_logging(store: RunStore, quiet: bool) -> list[logging.Handler]:
     log.setLevel(logging.DEBUG)
-    file_handler = logging.FileHandler(store.log_path, encoding="utf-8")
+    file_handler = _RunLogHandler(store.log_path, encoding="utf-8")
     file_handler.setLevel(logging.DEBUG)
     file_handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(message)s", "%Y-%m-%dT%H:%M:%S"))
     console = _ConsoleHandler()
@@ -428,6 +463,12 @@ def run_survey(
                 log.info("removed old output %s", p.name)
         log.info("done: %d stage(s) run, %d fresh", len(ran), len(skipped))
         return RunReport(ran, skipped, manifest, store.folder)
+    except OSError as err:
+        clear = _run_folder_error(err, store.folder)
+        if clear is None:
+            raise
+        log.debug("run stopped: %s", clear)  # run log only: the command line prints the one line
+        raise clear from None
     finally:
         for h in handlers:
             log.removeHandler(h)
@@ -452,7 +493,11 @@ def _run_stage(plan: StagePlan, store: RunStore, config: SurveyConfig, progress_
         data[up] = load_stage_data(store.output_dir(up, plan.upstream[up]), config.run["chunk_readings"])
     tmp = store.begin(name, plan.key)
     scratch = tmp / ".scratch"
-    scratch.mkdir()
+    try:
+        scratch.mkdir()
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
     context = StageContext(
         survey=config.survey,
         inputs=plan.inputs,

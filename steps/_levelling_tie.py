@@ -60,6 +60,14 @@ MAD_TO_SIGMA = 1.4826
 #: Most solve-and-reject passes of each step.
 _MAX_PASSES = 10
 
+#: Least robust standard deviation of the misfits used to reject, nT. A
+#: crossover that its segment's polynomial fits exactly (one crossover for a
+#: constant, two for a straight line) has a misfit of rounding size only
+#: (1e-15 nT); rejecting on such a spread would drop crossovers at random and
+#: leave their lines unlevelled. A millionth of a nT is far below any
+#: magnetometer's resolution (about a thousandth of a nT, from memory).
+_SIGMA_FLOOR_NT = 1e-6
+
 
 @dataclass
 class TieSolution:
@@ -194,8 +202,9 @@ def _reject(misfit: np.ndarray, valid: np.ndarray, used: np.ndarray, multiple: f
     if multiple <= 0:
         return used
     sigma = _robust_sigma(misfit[used])
-    if not np.isfinite(sigma) or sigma <= 0:
+    if not np.isfinite(sigma):
         return used
+    sigma = max(sigma, _SIGMA_FLOOR_NT)
     centre = np.median(misfit[used])
     with np.errstate(invalid="ignore"):
         return valid & (np.abs(misfit - centre) <= multiple * sigma)

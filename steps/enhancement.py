@@ -198,7 +198,8 @@ def enhance(
     work = residual
     # every tile at least as large as the halo (short edge tiles are merged into their neighbour)
     if any(min(c) < halo_cells and len(c) > 1 for c in chunks):
-        work = residual.rechunk(tuple(_tiles(n, max(c[0], halo_cells), halo_cells) for c, n in zip(chunks, residual.shape)))
+        # tiles a whole number of store chunks, so no two tiles write one chunk
+        work = residual.rechunk(tuple(_tiles(n, c[0] * -(-max(c[0], halo_cells) // c[0]), halo_cells) for c, n in zip(chunks, residual.shape)))
     depth = {0: min(halo_cells, work.shape[0]), 1: min(halo_cells, work.shape[1])}
     depth = {a: (d if len(work.chunks[a]) > 1 else 0) for a, d in depth.items()}
     counts = da.map_blocks(_finite_count, work, chunks=tuple((1,) * len(c) for c in work.chunks), dtype=np.int64).compute()
@@ -253,7 +254,8 @@ def _tiles(n: int, size: int, minimum: int) -> tuple[int, ...]:
     """Tile sizes of ``size`` covering ``n`` cells, a short last tile folded into its neighbour."""
     sizes = [size] * (n // size) + ([n % size] if n % size else [])
     if len(sizes) > 1 and sizes[-1] < minimum:
-        sizes[-2] += sizes.pop()
+        last = sizes.pop()
+        sizes[-1] += last
     return tuple(sizes) or (n,)
 
 

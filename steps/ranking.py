@@ -10,7 +10,9 @@ Confirmation
     peak anomaly is at least ``min_snr`` times the residual noise, and the
     source lies no higher than ``min_burial_m`` below the seabed (where the
     seabed is known): a fit that puts a source well up in the water column
-    explains noise or the tail of a neighbour, not a buried item. Picks whose fit failed
+    explains noise or the tail of a neighbour, not a buried item. A fit with
+    no accepted reading within ``seabed_radius_m`` lies outside the surveyed
+    area and is not confirmed either. Picks whose fit failed
     are not dropped: they go to the table ``unconfirmed`` with the reason,
     and ``keep_unconfirmed = true`` lists them as targets too (kind and
     position of the pick, no fit figures). Fits of different picks that
@@ -259,6 +261,11 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
         if ok.any():
             bed[ok.to_numpy()] = _seabed(readings, fit_xy[ok.to_numpy()], s["seabed_radius_m"], exclude)
         high = ok & (bed - d["elevation_m"].to_numpy(float) < s["min_burial_m"])
+        if readings is not None and "altitude" in readings.variables:
+            # no accepted reading within seabed_radius_m: the fitted source lies outside the surveyed area
+            outside = ok & ~np.isfinite(bed)
+            d.loc[outside, "note"] = f"no accepted reading within {s['seabed_radius_m']:g} m: outside the surveyed area"
+            ok = ok & ~outside
         d.loc[high, "note"] = [f"source {b:.2f} m above the seabed (min_burial_m = {s['min_burial_m']:g})"
                                for b in (d.loc[high, "elevation_m"] - bed[high.to_numpy()])]
         ok = ok & ~high
