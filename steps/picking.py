@@ -341,10 +341,17 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
         "residual_noise_nT": float(residual_sigma),
         **({"noise_nT_per_m": float(noise)} if units == "nT/m" else {"noise_nT": float(noise)} if units == "nT" else {}),
     }
-    context.log.info(
-        "picking: noise %.4g %s, threshold %.4g %s; %d candidates -> %s",
-        noise, units, threshold, units, len(found), ", ".join(f"{v} {k}" for k, v in counts.items()),
-    )
+    if s["pick_on"] == "dipole_detector":
+        context.log.info(
+            "picking: dipole detector at depths %s m, threshold %.4g (detection signal-to-noise); residual noise %.4g nT; "
+            "%d candidates -> %s", ", ".join(f"{d:g}" for d in s["detector_depths_m"]), threshold, residual_sigma,
+            len(found), ", ".join(f"{v} {k}" for k, v in counts.items()),
+        )
+    else:
+        context.log.info(
+            "picking: noise %.4g %s, threshold %.4g %s; %d candidates -> %s",
+            noise, units, threshold, units, len(found), ", ".join(f"{v} {k}" for k, v in counts.items()),
+        )
     return StageResult(tables={"picks": picks, "feature_picks": feature_picks, "picking_metadata": metadata}, summary=summary)
 
 
