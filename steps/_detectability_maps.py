@@ -60,6 +60,7 @@ import numpy as np
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
+from ._blocks import as_dask
 from . import _detectability_physics as phys
 
 __all__ = ["DetectionModel", "accepted_chunks", "chunk_boxes", "nearest_maps", "pickable_mask", "area_mask",
@@ -149,12 +150,7 @@ def accepted_chunks(readings, exclude: int, keep_line: np.ndarray, fallback_alti
     chunks = readings["easting"].data.chunks
 
     def blocks(name):
-        arr = readings[name].data
-        if not isinstance(arr, da.Array):
-            arr = da.from_array(np.asarray(arr), chunks=chunks)
-        elif arr.chunks != chunks:
-            arr = arr.rechunk(chunks)
-        return arr.to_delayed().ravel()
+        return as_dask(readings[name], chunks).to_delayed().ravel()
 
     cols = [blocks(x) for x in ("easting", "northing", "altitude", "flags", "line_index", value)]
     return [dask.delayed(_accepted, pure=True)(*parts, exclude=exclude, keep_line=keep_line, fallback=fallback_altitude)

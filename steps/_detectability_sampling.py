@@ -49,9 +49,10 @@ from __future__ import annotations
 import math
 
 import dask
-import dask.array as da
 import numpy as np
 import pandas as pd
+
+from ._blocks import as_dask
 
 __all__ = ["stretch_table", "line_spacing", "line_table", "sampling_checks", "STRETCH_FLAGS"]
 
@@ -151,12 +152,7 @@ def stretch_table(readings, segments, exclude: int, stretch_m: float, alt_grid, 
     sensor = np.asarray(segments["sensor_index"].values, dtype=np.int64)
 
     def blocks(name):
-        arr = readings[name].data
-        if not isinstance(arr, da.Array):
-            arr = da.from_array(np.asarray(arr), chunks=chunks)
-        elif arr.chunks != chunks:
-            arr = arr.rechunk(chunks)
-        return arr.to_delayed().ravel()
+        return as_dask(readings[name], chunks).to_delayed().ravel()
 
     cols = [blocks(x) for x in ("easting", "northing", "time", "flags", value, "altitude")]
     tasks = []

@@ -35,6 +35,7 @@ import dask.array as da
 import numpy as np
 from scipy.interpolate import griddata
 
+from ._blocks import as_dask
 from . import _gridding_lattice as lattice
 
 #: Offset that keeps block indices positive in the block key.
@@ -78,12 +79,7 @@ def prepared_chunks(readings, variables, exclude: int, keep_line: np.ndarray, bl
     base = readings["easting"].data
     chunks = base.chunks
     def blocks(name):
-        arr = readings[name].data
-        if not isinstance(arr, da.Array):
-            arr = da.from_array(np.asarray(arr), chunks=chunks)
-        elif arr.chunks != chunks:
-            arr = arr.rechunk(chunks)
-        return arr.to_delayed().ravel()
+        return as_dask(readings[name], chunks).to_delayed().ravel()
     cols = [blocks(x) for x in ("easting", "northing", "flags", "line_index", "sensor_index", *variables)]
     return [
         dask.delayed(_prep, pure=True)(*parts, exclude=exclude, keep_line=keep_line, block_m=block_m)

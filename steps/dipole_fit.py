@@ -71,7 +71,7 @@ from scipy.stats import f as f_dist
 from lodeline.model import DEFAULT_EXCLUDE, FLAGS, DataError, Stage, StageContext, StageResult, flag_mask
 from lodeline.params import Param, ParameterError, validate_table
 
-from ._dipole_model import field_unit_vector
+from ._dipole_model import design, field_unit_vector
 from ._dipole_rows import COLUMNS, empty_row, fit_group
 from ._dipole_select import select_near
 
@@ -305,8 +305,6 @@ def _second_sources(rows, near, obs_all, values, f_hat, settings, start_id: int)
         centre = np.array([[row["easting_m"], row["northing_m"]]])
         one, _ = fit_group(obs, val, f_hat, centre, [first], settings)
         m = np.array([row["moment_east_Am2"], row["moment_north_Am2"], row["moment_up_Am2"]])
-        from ._dipole_model import design
-
         back = np.column_stack([np.ones(len(obs)), obs[:, :2] - obs[:, :2].mean(axis=0)])
         model = design(obs, first[None], f_hat) @ m
         coef, *_ = np.linalg.lstsq(back, val - model, rcond=None)
