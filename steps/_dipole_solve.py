@@ -1,12 +1,15 @@
 """Nonlinear least-squares fit of point dipoles to total-field readings.
 
 Variable projection (Golub & Pereyra 1973): the anomaly is linear in the
-moments and the background (a constant, or a plane in easting and
-northing), so for each trial set of source positions these are solved by
+moments and the background (a constant, a plane in easting and
+northing, or a quadratic surface), so for each trial set of source positions these are solved by
 linear least squares, and only the positions (three numbers per source)
 are searched, with ``scipy.optimize.least_squares`` (trust-region
 reflective, bounds on the positions) from several starts; the start of
-least cost wins.
+least cost wins. The search uses Kaufman's (1975) approximation of the
+variable-projection Jacobian (the projected derivative of the design
+matrix times the linear coefficients), one QR factorisation per
+evaluation instead of a linear solve per position parameter.
 
 Uncertainties are those of the linearised full problem: with ``J`` the
 Jacobian of the model with respect to every parameter (positions, moments,
@@ -23,6 +26,9 @@ Golub, G. H., and Pereyra, V. (1973). The differentiation of
     pseudo-inverses and nonlinear least squares problems whose variables
     separate. SIAM Journal on Numerical Analysis 10(2), 413-432.
     [Golub1973]_
+Kaufman, L. (1975). A variable projection method for solving separable
+    nonlinear least squares problems. BIT Numerical Mathematics 15,
+    49-57. [Kaufman1975]_ (cited from memory)
 Press, W. H., Teukolsky, S. A., Vetterling, W. T., and Flannery, B. P.
     (2007). Numerical Recipes, 3rd ed. Cambridge University Press.
     [Press2007]_
@@ -37,7 +43,7 @@ from scipy.optimize import least_squares
 
 from ._dipole_model import design
 
-__all__ = ["DipoleFit", "fit_dipoles"]
+__all__ = ["BACKGROUND_TERMS", "DipoleFit", "background_columns", "correlation_factor", "fit_dipoles"]
 
 _STEP_M = 1e-3
 
@@ -67,6 +73,8 @@ class DipoleFit:
         Whether a position ended on its search bound.
     bound_sources : ndarray of bool (k,)
         Per source, whether its position ended on its search bound.
+    residuals : ndarray (n,)
+        Readings less the fitted model (dipoles and background), nT.
     """
 
     positions: np.ndarray
@@ -78,9 +86,10 @@ class DipoleFit:
     n: int
     at_bound: bool
     bound_sources: np.ndarray = None
+    residuals: np.ndarray = None
 
 
-def _correlation_factor(obs: np.ndarray, res: np.ndarray, max_step_m: float = 1.0) -> float:
+def correlation_factor(obs: np.ndarray, res: np.ndarray, max_step_m: float = 1.0) -> float:
     """Variance inflation ``(1 + r) / (1 - r)`` for residuals correlated along the track.
 
     ``r`` is the correlation of consecutive residuals (readings in storage
@@ -106,12 +115,19 @@ def _correlation_factor(obs: np.ndarray, res: np.ndarray, max_step_m: float = 1.
     return (1.0 + r) / (1.0 - r)
 
 
-def _background(obs: np.ndarray, kind: str) -> np.ndarray:
+BACKGROUND_TERMS = {"constant": 1, "plane": 3, "quadratic": 6}
+
+
+def background_columns(obs: np.ndarray, kind: str) -> np.ndarray:
+    """Design columns of the background: 1; east, north about the window centre; and for ``quadratic`` their squares and product (per 10 m, for conditioning)."""
     ones = np.ones((obs.shape[0], 1))
     if kind == "constant":
         return ones
-    centre = obs[:, :2].mean(axis=0)
-    return np.hstack([ones, obs[:, :2] - centre])
+    d = obs[:, :2] - obs[:, :2].mean(axis=0)
+    if kind == "plane":
+        return np.hstack([ones, d])
+    q = d / 10.0
+    return np.hstack([ones, d, q * q, (q[:, 0] * q[:, 1])[:, None]])
 
 
 def _linear(obs, values, positions, f_hat, back):
@@ -143,14 +159,14 @@ def fit_dipoles(
         Starting source positions, m; at least one.
     lower, upper : ndarray (k, 3)
         Bounds of the source positions, m (``lower < upper``).
-    background : {"constant", "plane"}
+    background : {"constant", "plane", "quadratic"}
         Background fitted with the dipoles.
 
     Returns
     -------
     DipoleFit
     """
-    back = _background(obs, background)
+    back = background_columns(obs, background)
     k = lower.shape[0]
     lo, hi = lower.ravel(), upper.ravel()
 
@@ -158,10 +174,29 @@ def fit_dipoles(
         a, coef = _linear(obs, values, p.reshape(k, 3), f_hat, back)
         return a @ coef - values
 
+    def jacobian(p):
+        # Kaufman's (1975) approximation to the variable-projection Jacobian: d r / d p_i = P (d A / d p_i) c,
+        # with P the projector on the complement of A's columns; d A / d p_i by central differences of the
+        # three design columns of the source that p_i belongs to
+        pos = p.reshape(k, 3)
+        a, coef = _linear(obs, values, pos, f_hat, back)
+        q, _ = np.linalg.qr(a)
+        out = np.empty((obs.shape[0], 3 * k))
+        for i in range(3 * k):
+            j, c = divmod(i, 3)
+            step = np.zeros(3)
+            step[c] = _STEP_M
+            plus = design(obs, (pos[j] + step)[None], f_hat)
+            minus = design(obs, (pos[j] - step)[None], f_hat)
+            v = (plus - minus) @ coef[3 * j : 3 * j + 3] / (2 * _STEP_M)
+            out[:, i] = v - q @ (q.T @ v)
+        return out
+
     best = None
     for start in starts:
         x0 = np.clip(np.asarray(start, float).ravel(), lo + 1e-6, hi - 1e-6)
-        sol = least_squares(residual, x0, bounds=(lo, hi), method="trf", x_scale=1.0, xtol=1e-10, ftol=1e-10, max_nfev=400)
+        sol = least_squares(residual, x0, jac=jacobian, bounds=(lo, hi), method="trf", x_scale=1.0, xtol=1e-10,
+                            ftol=1e-10, max_nfev=400)
         if best is None or sol.cost < best.cost:
             best = sol
     pos = best.x.reshape(k, 3)
@@ -182,7 +217,7 @@ def fit_dipoles(
         minus = design(obs, (flat - step).reshape(k, 3), f_hat) @ coef[: 3 * k]
         jac_pos[:, i] = (plus - minus) / (2 * _STEP_M)
     jac = np.hstack([jac_pos, a])
-    s2 = rss / max(n - n_par, 1) * _correlation_factor(obs, res)
+    s2 = rss / max(n - n_par, 1) * correlation_factor(obs, res)
     cov = s2 * np.linalg.pinv(jac.T @ jac)
     pcov = np.stack([cov[3 * j : 3 * j + 3, 3 * j : 3 * j + 3] for j in range(k)])
     off = 3 * k
@@ -202,4 +237,5 @@ def fit_dipoles(
         n=int(n),
         at_bound=at_bound,
         bound_sources=on_bound,
+        residuals=-res,
     )

@@ -30,6 +30,7 @@ import pandas as pd
 
 from ._dipole_model import design, field_unit_vector
 from ._dipole_select import select_near
+from ._dipole_solve import background_columns
 
 __all__ = ["moment_vector", "dipole_anomaly", "target_profiles"]
 
@@ -58,10 +59,7 @@ def dipole_anomaly(obs: np.ndarray, sources: np.ndarray, moments: np.ndarray, f_
 
 
 def _background(obs, rest, kind):
-    cols = [np.ones(len(obs))]
-    if kind == "plane":
-        cols += [obs[:, 0] - obs[:, 0].mean(), obs[:, 1] - obs[:, 1].mean()]
-    a = np.column_stack(cols)
+    a = background_columns(obs, kind)
     coef, *_ = np.linalg.lstsq(a, rest, rcond=None)
     return a @ coef
 

@@ -5,7 +5,7 @@ levelled residual readings within ``radius_m`` (horizontal) of the pick,
 left out those flagged with any of ``exclude_flags``, are fitted with a
 point dipole (position and the three moment components; Blakely 1995,
 ch. 4 and 12, total-field anomaly as the projection of the dipole field on
-the main-field direction) plus a background (a constant or a plane), by
+the main-field direction) plus a background (a constant, a plane or a quadratic surface), by
 nonlinear least squares with variable projection (Golub & Pereyra 1973):
 moments and background by linear least squares at each trial position,
 the position by ``scipy.optimize.least_squares`` within bounds (``radius_m``
@@ -14,7 +14,7 @@ median sensor elevation). Starts: the Euler solution of the pick when it
 has one (Reid et al. 1990), and the pick position at each of
 ``start_depths_m``; the start of least cost wins. One-sigma errors come
 from the covariance ``s^2 (J^T J)^-1`` of the linearised fit (Press et al.
-2007, ch. 15.5).
+2007, ch. 15.5), widened for residuals correlated along the track.
 
 Readings are selected chunk by chunk (see
 :mod:`lodeline.steps._dipole_select`): only the chunks whose bounding box
@@ -32,6 +32,17 @@ Joint fits
     Smith 1998, ch. 5; 6 extra parameters per extra source) at p below
     ``joint_p_value``. The members then share ``joint_group`` (an integer;
     -1 for single fits).
+
+Neighbours and added sources
+    Then (:mod:`lodeline.steps._dipole_refine`) each window is refitted
+    with the modelled fields of the fitted sources outside it removed
+    (``neighbour_passes``), and a window whose residual RMS stays above
+    ``add_rms_multiple`` times the noise and ``add_fraction`` of its
+    anomaly is given further sources, one at a time at the largest
+    remaining residual, each kept when the F test prefers it: close
+    objects that the picking saw as one. Added sources get new pick
+    numbers, kind ``cluster`` and the note "sources added where the fit
+    left signal".
 
 Outputs
     ``tables["dipoles"]``: one row per pick (columns in
@@ -65,13 +76,14 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+import shapely
 from scipy.spatial import cKDTree
-from scipy.stats import f as f_dist
 
 from lodeline.model import DEFAULT_EXCLUDE, FLAGS, DataError, Stage, StageContext, StageResult, flag_mask
 from lodeline.params import Param, ParameterError, validate_table
 
-from ._dipole_model import design, field_unit_vector
+from ._dipole_model import field_unit_vector
+from ._dipole_refine import better, noise_from_readings, refine
 from ._dipole_rows import COLUMNS, empty_row, fit_group
 from ._dipole_select import select_near
 
@@ -82,8 +94,8 @@ KINDS = ("point", "cluster", "linear", "extended")
 PARAMS = (
     Param("radius_m", 5.0, "Horizontal radius about a pick within which readings are fitted, m.",
           minimum=0, exclusive_minimum=True),
-    Param("background", "plane", "Background fitted with the dipole: a constant, or a plane in easting and northing.",
-          kind=str, choices=("constant", "plane")),
+    Param("background", "plane", "Background fitted with the dipole: a constant, a plane in easting and northing, or a quadratic surface (for windows on the tail of a large source).",
+          kind=str, choices=("constant", "plane", "quadratic")),
     Param("min_readings", 30, "Fewest readings for a fit; a pick with fewer gets NaN and a note.", kind=int, minimum=10),
     Param("start_depths_m", [0.5, 1.5, 3.0, 6.0], "Start depths below the median sensor elevation, m (besides the Euler solution).",
           kind=list, item_kind=float, minimum=1),
@@ -95,8 +107,20 @@ PARAMS = (
           minimum=0, maximum=1),
     Param("joint_p_value", 1e-3, "Largest p-value of the F test at which a joint fit replaces the single fits.",
           minimum=0, exclusive_minimum=True, maximum=1),
-    Param("second_source", True, "Try a second dipole beside single fits with R^2 below joint_r2_below (kept when the F test prefers it).", kind=bool),
-    Param("max_joint", 3, "Most sources in one joint fit (1 turns joint fits off).", kind=int, minimum=1, maximum=6),
+    Param("max_joint", 5, "Most sources in one fit window, joint fits and added sources together (1 turns both off).",
+          kind=int, minimum=1, maximum=8),
+    Param("neighbour_passes", 2, "Passes refitting each window with the modelled fields of the other fitted sources removed (0: off).",
+          kind=int, minimum=0, maximum=5),
+    Param("add_sources", True, "Add dipoles where the residual of all fitted sources still holds signal (kept when the F test prefers them).",
+          kind=bool),
+    Param("add_rms_multiple", 2.5, "A fit is given another source while its residual RMS exceeds this multiple of the noise and add_fraction of its anomaly.",
+          minimum=1),
+    Param("add_fraction", 0.01, "A fit is given another source only while its residual RMS exceeds this fraction of its largest anomaly (the misfit of a strong source through position errors is about 1 % of its peak on the demo).",
+          minimum=0, maximum=1),
+    Param("add_min_separation_m", 1.0, "Closest an added source may lie to another source, m.", minimum=0),
+    Param("feature_buffer_m", 3.0, "No source is added within this distance of a linear or extended feature, m.", minimum=0),
+    Param("noise_nT", 0.0, "Noise standard deviation of the readings, nT; 0 takes the residual noise measured by the picking stage.",
+          minimum=0),
     Param("fit_kinds", ["point", "cluster"], "Pick kinds fitted with a point dipole.", kind=list, choices=KINDS, minimum=1),
     Param("exclude_flags", list(DEFAULT_EXCLUDE), "Flags whose readings are left out of the fit.",
           kind=list, choices=tuple(FLAGS)),
@@ -176,7 +200,8 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     kinds = [str(k) for k in picks["kind"]]
     xy = picks[["easting_m", "northing_m"]].to_numpy(float)
     fitted = np.array([k in settings["fit_kinds"] and np.all(np.isfinite(p)) for k, p in zip(kinds, xy)], bool)
-    sel = select_near(readings, "residual", xy[fitted], radius, flag_mask(*settings["exclude_flags"]))
+    # readings out to twice the radius: a window is widened when a source is added at its edge
+    sel = select_near(readings, "residual", xy[fitted], 2 * radius, flag_mask(*settings["exclude_flags"]))
     obs_all = np.column_stack([sel["easting"], sel["northing"], sel["elevation"]])
     tree = cKDTree(obs_all[:, :2]) if len(obs_all) else None
     near = [np.array(tree.query_ball_point(p, radius), dtype=np.int64) if (tree is not None and ok) else np.zeros(0, np.int64)
@@ -194,16 +219,21 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
         else:
             fit, (row,) = fit_group(obs_all[idx], sel["value"][idx], f_hat, xy[i : i + 1], [euler.get(pid)], settings)
             row.update(pick_id=pid, kind=kinds[i], joint_group=-1, main_field_nT=main_nT, note="", ok=False,
-                       _at_bound=fit.at_bound)
+                       _at_bound=fit.at_bound, _centre=xy[i].copy(), _window=idx)
             rows.append(row)
         progress.update(1)
     progress.close()
 
     n_joint = _joint_fits(rows, xy, fitted, near, obs_all, sel["value"], f_hat, settings)
-    n_added = _second_sources(rows, near, obs_all, sel["value"], f_hat, settings, start_id=max([0, *[int(i) for i in ids]]))
+    noise_nT, noise_source = _noise(settings, data, obs_all, sel["value"])
+    domain = _add_domain(obs_all, picks, settings)
+    refined = refine(rows, obs_all, sel["value"], f_hat, settings, noise_nT, domain,
+                     next_pick_id=max([0, *[int(i) for i in ids]]), next_group=n_joint)
     for row in rows:
         if "_at_bound" not in row:
             continue
+        row.pop("_centre", None)
+        row.pop("_window", None)
         _mark(row, settings)
     table = pd.DataFrame(rows, columns=list(COLUMNS))
     for col in COLUMNS[2:]:
@@ -218,16 +248,56 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
         "fitted": int(np.isfinite(table["fit_r2"]).sum()),
         "ok": int(table["ok"].sum()),
         "joint_groups": n_joint,
-        "second_sources": n_added,
+        "refitted_without_neighbours": refined["refitted"],
+        "sources_added": refined["added"],
+        "seeds_tried": refined["seeds_tried"],
+        "nuisance_dipoles": refined["nuisance"],
+        "noise_nT": noise_nT,
+        "noise_source": noise_source,
         "median_r2": float(np.nanmedian(table["fit_r2"])) if np.isfinite(table["fit_r2"]).any() else float("nan"),
         "readings_loaded": int(len(obs_all)),
         "chunks_read": int(sel["chunks_read"]),
         "chunks_total": int(sel["chunks_total"]),
     }
     context.log.info("dipole_fit: %(fitted)d of %(picks)d picks fitted, %(ok)d ok, %(joint_groups)d joint groups, "
-                     "median R^2 %(median_r2).3f; %(readings_loaded)d readings loaded from %(chunks_read)d of "
-                     "%(chunks_total)d chunks", summary)
+                     "%(refitted_without_neighbours)d windows refitted with neighbours removed, %(sources_added)d sources "
+                     "added (noise %(noise_nT).3g nT, %(noise_source)s), median R^2 %(median_r2).3f; %(readings_loaded)d "
+                     "readings loaded from %(chunks_read)d of %(chunks_total)d chunks", summary)
     return StageResult(tables={"dipoles": table}, summary=summary)
+
+
+def _add_domain(obs, picks, settings) -> np.ndarray:
+    """Readings that may seed an added source: those outside the buffer of linear and extended features."""
+    domain = np.ones(len(obs), bool)
+    if "geometry_wkt" in picks and domain.any():
+        shapes = [shapely.from_wkt(w) for k, w in zip(picks["kind"], picks["geometry_wkt"])
+                  if k in ("linear", "extended") and isinstance(w, str) and w]
+        if shapes:
+            features = shapely.union_all(shapes)
+            where = np.flatnonzero(domain)
+            far = shapely.distance(shapely.points(obs[where, 0], obs[where, 1]), features) > settings["feature_buffer_m"]
+            domain[where[~far]] = False
+    return domain
+
+
+def _noise(settings: dict, data: dict, obs: np.ndarray, values: np.ndarray) -> tuple[float, str]:
+    """Noise standard deviation, nT, and where it came from."""
+    if settings["noise_nT"] > 0:
+        return float(settings["noise_nT"]), "dipole_fit.noise_nT"
+    meta = data.get("picking", {}).get("picking_metadata")
+    if meta is not None and len(meta) and "key" in meta:
+        found = meta.loc[meta["key"] == "residual_noise_nT", "value"]
+        if len(found):
+            value = float(found.iloc[0])
+            if np.isfinite(value) and value > 0:
+                return value, "picking residual noise"
+    if len(values) == 0:
+        return float("nan"), "none (no readings near the picks)"
+    value = noise_from_readings(obs, values)
+    if not (np.isfinite(value) and value > 0):
+        raise DataError("dipole_fit: no noise level: the picking metadata lacks residual_noise_nT and the readings near "
+                        "the picks are too few to measure it; set dipole_fit.noise_nT")
+    return value, "second differences of the readings"
 
 
 def _mark(row: dict, settings: dict) -> None:
@@ -264,86 +334,17 @@ def _joint_fits(rows, xy, fitted, near, obs_all, values, f_hat, settings) -> int
         starts = [np.array([rows[j]["easting_m"], rows[j]["northing_m"], rows[j]["elevation_m"]]) for j in members]
         one, _ = fit_group(obs_all[idx], values[idx], f_hat, xy[[i]], starts[:1], settings)
         fit, new = fit_group(obs_all[idx], values[idx], f_hat, xy[members], starts, settings)
-        if not _better(one, fit, len(members) - 1, settings):
+        if not better(one, fit, len(members) - 1, settings):
             continue
         names = ", ".join(str(rows[j]["pick_id"]) for j in members)
         for m, (j, row) in enumerate(zip(members, new)):
             row.update(pick_id=rows[j]["pick_id"], kind=rows[j]["kind"], joint_group=n_groups,
                        main_field_nT=rows[j]["main_field_nT"], note=f"fitted jointly with picks {names}",
-                       _at_bound=bool(fit.bound_sources[m]))
+                       _at_bound=bool(fit.bound_sources[m]), _centre=xy[j].copy(), _window=idx)
             rows[j] = row
         grouped.update(members)
         n_groups += 1
     return n_groups
-
-
-def _second_sources(rows, near, obs_all, values, f_hat, settings, start_id: int) -> int:
-    """Try a second dipole beside every single fit with R^2 below ``joint_r2_below``.
-
-    The second source starts at the reading of the largest absolute residual
-    of the single fit. When the extra-sum-of-squares F test prefers the
-    two-dipole fit (``joint_p_value``) and the first source stays inside its
-    search bound, the first source's row is replaced by the two-dipole
-    fit's; the second is kept as a row of its own with a new pick number
-    when it too stays inside its bound, and is dropped as a nuisance term
-    (the tail of a source outside the window) when it ends on the bound.
-    Compact sources closer together than a window are otherwise fitted as
-    one biased dipole (a cluster the picking could not resolve).
-    """
-    if not settings["second_source"]:
-        return 0
-    added = 0
-    new_rows = []
-    for i, row in enumerate(rows):
-        if row.get("joint_group", -1) != -1 or "_at_bound" not in row or row.get("_at_bound"):
-            continue
-        if not (np.isfinite(row["fit_r2"]) and row["fit_r2"] < settings["joint_r2_below"]):
-            continue
-        idx = near[i]
-        obs, val = obs_all[idx], values[idx]
-        first = np.array([row["easting_m"], row["northing_m"], row["elevation_m"]])
-        centre = np.array([[row["easting_m"], row["northing_m"]]])
-        one, _ = fit_group(obs, val, f_hat, centre, [first], settings)
-        m = np.array([row["moment_east_Am2"], row["moment_north_Am2"], row["moment_up_Am2"]])
-        back = np.column_stack([np.ones(len(obs)), obs[:, :2] - obs[:, :2].mean(axis=0)])
-        model = design(obs, first[None], f_hat) @ m
-        coef, *_ = np.linalg.lstsq(back, val - model, rcond=None)
-        res = val - model - back @ coef
-        k = int(np.argmax(np.abs(res)))
-        second = np.array([obs[k, 0], obs[k, 1], row["elevation_m"]])
-        xy2 = np.vstack([centre, obs[k : k + 1, :2]])
-        fit, new = fit_group(obs, val, f_hat, xy2, [first, second], settings)
-        if fit.bound_sources[0] or not _better(one, fit, 1, settings) or fit.r2 < settings["accept_r2"]:
-            continue
-        if fit.bound_sources[1]:
-            # The second dipole went to the edge of its box: it stands for the tail of a source outside the
-            # window, which biased the single fit. Keep the first source of the two-dipole fit only.
-            new[0].update(pick_id=row["pick_id"], kind=row["kind"], joint_group=-1, main_field_nT=row["main_field_nT"],
-                          note="fitted with a nuisance dipole for a source outside the window", _at_bound=False)
-            rows[i] = new[0]
-            continue
-        added += 1
-        group = f"fitted with a second source (pick {start_id + added})"
-        new[0].update(pick_id=row["pick_id"], kind=row["kind"], joint_group=-1, main_field_nT=row["main_field_nT"],
-                      note=group, _at_bound=False)
-        new[1].update(pick_id=start_id + added, kind="cluster", joint_group=-1, main_field_nT=row["main_field_nT"],
-                      note=f"second source found fitting pick {row['pick_id']}", _at_bound=False)
-        rows[i] = new[0]
-        new_rows.append(new[1])
-    rows.extend(new_rows)
-    return added
-
-
-def _better(one, joint, extra_sources: int, settings: dict) -> bool:
-    """Extra-sum-of-squares F test of the joint fit against one dipole on the same readings."""
-    n_back = 1 if settings["background"] == "constant" else 3
-    extra = 6 * extra_sources
-    dof = joint.n - 6 * (extra_sources + 1) - n_back
-    rss_one, rss_joint = one.n * one.rms_nT**2, joint.n * joint.rms_nT**2
-    if dof <= 0 or rss_joint <= 0 or rss_joint >= rss_one:
-        return False
-    f_stat = ((rss_one - rss_joint) / extra) / (rss_joint / dof)
-    return bool(f_dist.sf(f_stat, extra, dof) < settings["joint_p_value"])
 
 
 STAGE = Stage(
