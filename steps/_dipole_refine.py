@@ -244,7 +244,8 @@ def _grow(rows, members, obs_all, values, f_hat, settings, noise_nT, domain, tre
     while len(starts) < settings["max_joint"] and len(failed) < 2:
         model = val - current.residuals
         size = float(np.max(np.abs(model - np.median(model))))
-        if not current.at_bound and current.rms_nT <= max(settings["add_rms_multiple"] * noise_nT, settings["add_fraction"] * size):
+        gate = max(settings["add_rms_multiple"] * noise_nT, settings["add_fraction"] * size)
+        if not current.at_bound and current.rms_nT <= gate:
             break
         others, _, _ = _sources(rows, settings)
         taken = np.array([p[:2] for p in current.positions] + [p[:2] for p in others] + failed)
@@ -262,7 +263,8 @@ def _grow(rows, members, obs_all, values, f_hat, settings, noise_nT, domain, tre
         pos = fit.positions[:, :2]
         gaps = np.hypot(pos[:, None, 0] - pos[None, :, 0], pos[:, None, 1] - pos[None, :, 1])[np.triu_indices(len(pos), 1)]
         cancelling = _cancelling(obs, fit, f_hat, data_size, len(members))
-        if cancelling or (gaps < sep).any() or fit.r2 < settings["accept_r2"] or not better(current, fit, 1, settings, correlation_factor(obs, fit.residuals)):
+        preferred = better(current, fit, 1, settings, correlation_factor(obs, fit.residuals))
+        if cancelling or (gaps < sep).any() or fit.r2 < settings["accept_r2"] or not preferred:
             failed.append(seed)
             continue
         # a source on its box edge, or nearer than _EDGE_M to the window's edge, may stand for the tail of a
@@ -285,7 +287,9 @@ def _grow(rows, members, obs_all, values, f_hat, settings, noise_nT, domain, tre
             wide_val = values[wide] - _neighbour_field(wide_obs, rows, members, f_hat, settings, np.array(trial_centres))
             wide_fit, wide_rows = fit_group(wide_obs, wide_val, f_hat, np.array(trial_centres), list(fit.positions), quick)
             wide_size = _size(wide_val)
-            if not (wide_fit.bound_sources.any() or wide_fit.r2 < settings["accept_r2"] or _cancelling(wide_obs, wide_fit, f_hat, wide_size, len(members))):
+            refused = (wide_fit.bound_sources.any() or wide_fit.r2 < settings["accept_r2"]
+                       or _cancelling(wide_obs, wide_fit, f_hat, wide_size, len(members)))
+            if not refused:
                 idx, obs, val, data_size = wide, wide_obs, wide_val, wide_size
                 tree_window = cKDTree(obs[:, :2])
                 fit, trial_rows, edge = wide_fit, wide_rows, np.zeros(len(trial_centres), bool)

@@ -240,8 +240,8 @@ def test_second_source_found_from_one_pick(tmp_path):
 
 def test_three_close_sources_resolved_from_one_pick(tmp_path):
     # three induced dipoles 1.8-4.2 m apart, 3.4-3.9 m below the sensors, one pick (a cluster the picking saw as
-    # one; the third source 3.6 m from the pick, near the edge of its 5 m window): sources are added one at a time where the fit leaves signal, and the window is widened
-    # about the one at its edge
+    # one; the third source 3.6 m from the pick, near the edge of its 5 m window): sources are added one at a
+    # time where the fit leaves signal, and the window is widened about the one at its edge
     src = np.array([[29.0, 10.0, -13.4], [30.8, 10.2, -13.9], [31.7, 6.1, -13.7]])
     moments = [induced(0.9), induced(1.4), induced(0.8)]
     ds, _ = make_readings(src, moments, noise=0.05)
