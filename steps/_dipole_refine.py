@@ -45,7 +45,7 @@ absolute deviation of second differences of consecutive readings along
 the tracks, divided by sqrt(6) (a second difference of white noise has
 standard deviation sqrt(6) sigma).
 
-The thresholds (2.5 x noise, 1 % of the anomaly, 1 m, 1.5 m) are choices
+The thresholds (2 x noise, 1 % of the anomaly, 1 m, 1.5 m) are choices
 made on the demo survey, where the misfit of an isolated strong item
 through position and altitude errors is about 1 % of its peak (common
 practice, no published source).

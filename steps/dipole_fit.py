@@ -113,7 +113,7 @@ PARAMS = (
           kind=int, minimum=0, maximum=5),
     Param("add_sources", True, "Add dipoles where the residual of all fitted sources still holds signal (kept when the F test prefers them).",
           kind=bool),
-    Param("add_rms_multiple", 2.5, "A fit is given another source while its residual RMS exceeds this multiple of the noise and add_fraction of its anomaly.",
+    Param("add_rms_multiple", 2.0, "A fit is given another source while its residual RMS exceeds this multiple of the noise and add_fraction of its anomaly.",
           minimum=1),
     Param("add_fraction", 0.01, "A fit is given another source only while its residual RMS exceeds this fraction of its largest anomaly (the misfit of a strong source through position errors is about 1 % of its peak on the demo).",
           minimum=0, maximum=1),
