@@ -64,7 +64,7 @@ from scipy import fft as sfft
 from ._dipole_model import design, field_unit_vector
 from ._picking_detector import N_DIPOLE, basis
 
-__all__ = ["DetectorSettings", "detector_settings", "least_moments", "halo_cells", "full_window_moments", "detection_depth",
+__all__ = ["DetectorSettings", "detector_settings", "least_moments", "least_moments_depths", "halo_cells", "full_window_moments", "detection_depth",
            "moments_grid"]
 
 
@@ -135,26 +135,43 @@ def halo_cells(settings: DetectorSettings, spacing: tuple, stride: int) -> tuple
 
 
 def _kernels(settings, k, z, spacing):
-    b = basis(settings.depths_m[k], settings.radii_m[k], spacing, settings.f_hat, settings.order)
+    b = _basis(settings, k, spacing)
+    n = b.shape[0]
+    pairs = [(i, j) for i in range(n) for j in range(i, n)]
+    double = np.stack([b[i] * b[j] for i, j in pairs])
+    return b, _single(settings, b, z, spacing), double, pairs
+
+
+def _basis(settings, k, spacing):
+    return basis(settings.depths_m[k], settings.radii_m[k], spacing, settings.f_hat, settings.order)
+
+
+def _single(settings, b, z, spacing):
+    """Kernels ``b_k u_c``: the basis grids times the anomaly of a unit moment ``z`` below the centre."""
     ky, kx = b.shape[1] // 2, b.shape[2] // 2
     y, x = np.mgrid[-ky : ky + 1, -kx : kx + 1].astype(float)
     obs = np.column_stack([x.ravel() * spacing[1], y.ravel() * spacing[0], np.zeros(x.size)])
     u = design(obs, np.array([[0.0, 0.0, -z]]), settings.f_hat).T.reshape(3, *x.shape)
-    n = b.shape[0]
-    pairs = [(i, j) for i in range(n) for j in range(i, n)]
-    single = np.stack([b[i] * u[c] for i in range(n) for c in range(3)])
-    double = np.stack([b[i] * b[j] for i, j in pairs])
-    return b, single, double, pairs
+    return np.stack([b[i] * u[c] for i in range(b.shape[0]) for c in range(3)])
 
 
-def _correlate(mask, kernels):
-    """Correlations of ``mask`` with each kernel, for the cells of ``mask`` (same shape)."""
+def _correlate(mask, kernels, f_mask=None):
+    """Correlations of ``mask`` with each kernel, for the cells of ``mask`` (same shape).
+
+    ``f_mask`` is the mask's transform at the padded shape, when the caller
+    correlates the same mask with several kernel sets.
+    """
     ky, kx = kernels.shape[1] // 2, kernels.shape[2] // 2
-    shape = tuple(sfft.next_fast_len(s + g - 1, real=True) for s, g in zip(mask.shape, kernels.shape[1:]))
-    f_mask = sfft.rfft2(mask, s=shape)
+    shape = _fft_shape(mask.shape, kernels.shape[1:])
+    if f_mask is None:
+        f_mask = sfft.rfft2(mask, s=shape)
     f_k = sfft.rfft2(kernels[:, ::-1, ::-1], s=shape, axes=(1, 2))
     full = sfft.irfft2(f_mask[None] * f_k, s=shape, axes=(1, 2))
     return full[:, ky : ky + mask.shape[0], kx : kx + mask.shape[1]]
+
+
+def _fft_shape(mask_shape, kernel_shape):
+    return tuple(sfft.next_fast_len(s + g - 1, real=True) for s, g in zip(mask_shape, kernel_shape))
 
 
 def least_moments(filled: np.ndarray, z_m: float, settings: DetectorSettings, spacing: tuple, stride: int,
@@ -179,12 +196,25 @@ def least_moments(filled: np.ndarray, z_m: float, settings: DetectorSettings, sp
     ndarray
         NaN where the cell is blank or no trial depth's window is filled enough.
     """
+    return least_moments_depths(filled, (z_m,), settings, spacing, stride, halo)[0]
+
+
+def least_moments_depths(filled: np.ndarray, depths_m, settings: DetectorSettings, spacing: tuple, stride: int,
+                         halo: tuple) -> list:
+    """:func:`least_moments` for several target depths at once, one (2, ny, nx) array per depth.
+
+    The mask's transform, its correlations with the products of the basis
+    grids (``G``, which do not depend on the target's depth) and the
+    factorisations that use them are computed once for all depths.
+    """
     hy, hx = halo
     ny, nx = filled.shape[0] - 2 * hy, filled.shape[1] - 2 * hx
-    out = np.full((2, ny, nx), np.nan)
+    depths_m = [float(z) for z in depths_m]
+    outs = [np.full((2, ny, nx), np.nan) for _ in depths_m]
     own = filled[hy : hy + ny, hx : hx + nx]
-    if not own.any() or not math.isfinite(z_m) or z_m <= 0:
-        return out
+    valid = [math.isfinite(z) and z > 0 for z in depths_m]
+    if not own.any() or not any(valid):
+        return outs
     sy, sx = -(-filled.shape[0] // stride) * stride, -(-filled.shape[1] // stride) * stride
     padded = np.zeros((sy, sx))
     padded[: filled.shape[0], : filled.shape[1]] = filled
@@ -193,50 +223,64 @@ def least_moments(filled: np.ndarray, z_m: float, settings: DetectorSettings, sp
     # the coarse cells holding the tile's own cells
     c0y, c0x = hy // stride, hx // stride
     cny, cnx = -(-ny // stride), -(-nx // stride)
-    best = np.full((2, cny, cnx), np.inf)
+    zs = [z for z, ok in zip(depths_m, valid) if ok]
+    best = np.full((len(zs), 2, cny, cnx), np.inf)
     f = settings.f_hat
     for k in range(len(settings.depths_m)):
-        b, single, double, pairs = _kernels(settings, k, z_m, cspacing)
+        b = _basis(settings, k, cspacing)
         n = b.shape[0]
+        pairs = [(i, j) for i in range(n) for j in range(i, n)]
+        double = np.stack([b[i] * b[j] for i, j in pairs])
+        f_mask = sfft.rfft2(coarse, s=_fft_shape(coarse.shape, b.shape[1:]))
         full_weight = float((b[N_DIPOLE] ** 2).sum())
-        g_flat = _correlate(coarse, double)[:, c0y : c0y + cny, c0x : c0x + cnx]
+        g_flat = _correlate(coarse, double, f_mask)[:, c0y : c0y + cny, c0x : c0x + cnx]
         fill = g_flat[pairs.index((N_DIPOLE, N_DIPOLE))] / full_weight
         use = fill >= settings.min_fill
         if not use.any():
             continue
         idx = np.nonzero(use)
-        m_flat = _correlate(coarse, single)[:, c0y : c0y + cny, c0x : c0x + cnx]
         gram = np.empty((idx[0].size, n, n))
         for p, (i, j) in enumerate(pairs):
             gram[:, i, j] = g_flat[p][idx]
             gram[:, j, i] = g_flat[p][idx]
-        mm = m_flat[:, idx[0], idx[1]].T.reshape(-1, n, 3)  # (cells, n, 3)
+        del g_flat
+        # the correlations with b_k u_c for every depth, solved against G and its background block at once
+        mm = np.concatenate([_correlate(coarse, _single(settings, b, z, cspacing), f_mask)[:, c0y : c0y + cny,
+                                                                                          c0x : c0x + cnx]
+                             [:, idx[0], idx[1]].T.reshape(-1, n, 3) for z in zs], axis=2)  # (cells, n, 3 depths)
         bg = slice(N_DIPOLE, n)
         try:
-            q = np.einsum("mki,mkj->mij", mm, np.linalg.solve(gram, mm))
-            q -= np.einsum("mki,mkj->mij", mm[:, bg], np.linalg.solve(gram[:, bg, bg], mm[:, bg]))
+            q_all = np.einsum("mki,mkj->mij", mm, np.linalg.solve(gram, mm))
+            q_all -= np.einsum("mki,mkj->mij", mm[:, bg], np.linalg.solve(gram[:, bg, bg], mm[:, bg]))
         except np.linalg.LinAlgError:
             continue
-        q = 0.5 * (q + np.transpose(q, (0, 2, 1))) * stride * stride
-        worst = np.linalg.eigvalsh(q)[:, 0]
-        typical = np.einsum("i,mij,j->m", f, q, f)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            for o, val in enumerate((worst, typical)):
-                moment = settings.threshold * np.sqrt(settings.scales_nT2[k] / np.where(val > 0, val, np.nan))
-                moment = np.where(np.isfinite(moment), moment, np.inf)
-                best[o][idx] = np.minimum(best[o][idx], moment)
+        for d in range(len(zs)):
+            q = q_all[:, 3 * d : 3 * d + 3, 3 * d : 3 * d + 3]
+            q = 0.5 * (q + np.transpose(q, (0, 2, 1))) * stride * stride
+            worst = np.linalg.eigvalsh(q)[:, 0]
+            typical = np.einsum("i,mij,j->m", f, q, f)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                for o, val in enumerate((worst, typical)):
+                    moment = settings.threshold * np.sqrt(settings.scales_nT2[k] / np.where(val > 0, val, np.nan))
+                    moment = np.where(np.isfinite(moment), moment, np.inf)
+                    best[d, o][idx] = np.minimum(best[d, o][idx], moment)
     best[~np.isfinite(best)] = np.nan
-    if stride > 1:
-        # the coarse lattice's discs hold a little more area than the cells' own:
-        # scale by the wholly-filled-window ratio of the fine to the coarse sums
-        exact = full_window_moments(settings, z_m, spacing)
-        rough = full_window_moments(settings, z_m, cspacing)
-        for o in range(2):
-            if math.isfinite(exact[o]) and math.isfinite(rough[o]) and rough[o] > 0:
-                best[o] *= exact[o] / (rough[o] / stride)
-    fine = np.repeat(np.repeat(best, stride, axis=1), stride, axis=2)[:, :ny, :nx]
-    out[:] = np.where(own[None], fine, np.nan)
-    return out
+    found = iter(range(len(zs)))
+    for out, z, ok in zip(outs, depths_m, valid):
+        if not ok:
+            continue
+        one = best[next(found)]
+        if stride > 1:
+            # the coarse lattice's discs hold a little more area than the cells' own:
+            # scale by the wholly-filled-window ratio of the fine to the coarse sums
+            exact = full_window_moments(settings, z, spacing)
+            rough = full_window_moments(settings, z, cspacing)
+            for o in range(2):
+                if math.isfinite(exact[o]) and math.isfinite(rough[o]) and rough[o] > 0:
+                    one[o] *= exact[o] / (rough[o] / stride)
+        fine = np.repeat(np.repeat(one, stride, axis=1), stride, axis=2)[:, :ny, :nx]
+        out[:] = np.where(own[None], fine, np.nan)
+    return outs
 
 
 def full_window_moments(settings: DetectorSettings, z_m: float, spacing: tuple) -> tuple[float, float]:
@@ -298,10 +342,9 @@ def _tile(filled, near, *, settings, spacing, stride, halo, burials, z_ref, z_gr
     typical) tabulated on ``z_grid``.
     """
     h = near[1]
-    out, done = [], {}
+    out, unique = [], list(dict.fromkeys(burials))
+    done = dict(zip(unique, least_moments_depths(filled, [z_ref[b] for b in unique], settings, spacing, stride, halo)))
     for b in burials:
-        if b not in done:
-            done[b] = least_moments(filled, z_ref[b], settings, spacing, stride, halo)
         base = done[b]
         z = h + b
         for o in range(2):

@@ -186,14 +186,38 @@ def _nearest_tile(te, tn, radius, *chunks):
     a = np.concatenate([p[2] for p in parts])
     tree = cKDTree(np.column_stack([e - te[0], n - tn[0]]))  # local coordinates keep precision
     ge, gn = np.meshgrid(te - te[0], tn - tn[0])
-    dist, idx = tree.query(np.column_stack([ge.ravel(), gn.ravel()]), k=1, distance_upper_bound=radius)
+    near = _maybe_near(tree, ge, gn, radius)
+    dist, idx = tree.query(np.column_stack([ge[near], gn[near]]), k=1, distance_upper_bound=radius)
     found = np.isfinite(dist)
-    d = np.where(found, dist, np.nan)
-    alt = np.full(d.shape, np.nan)
-    alt[found] = a[idx[found]]
-    out[0] = d.reshape(tn.size, te.size)
-    out[1] = alt.reshape(tn.size, te.size)
+    d = np.full(ge.shape, np.nan)
+    alt = np.full(ge.shape, np.nan)
+    d[near] = np.where(found, dist, np.nan)
+    alt[near] = np.where(found, a[np.minimum(idx, len(a) - 1)], np.nan)
+    out[0] = d
+    out[1] = alt
     return out
+
+
+def _maybe_near(tree, ge, gn, radius):
+    """Cells that may have a reading within ``radius``: the blocks of cells whose centre has one within
+    ``radius`` plus the block's half diagonal (exact: no cell outside them has one).
+
+    Most cells of a grid over lines at an angle to its axes are empty; the
+    full nearest-reading search then runs on the others only.
+    """
+    ny, nx = ge.shape
+    cell = max(abs(ge[0, 1] - ge[0, 0]) if nx > 1 else 0.0, abs(gn[1, 0] - gn[0, 0]) if ny > 1 else 0.0)
+    block = max(1, int(radius / (4 * cell))) if cell > 0 else 1
+    if block < 2:
+        return np.ones(ge.shape, bool)
+    rows, cols = np.arange(0, ny, block), np.arange(0, nx, block)
+    ce = np.array([ge[0, c : c + block].mean() for c in cols])
+    cn = np.array([gn[r : r + block, 0].mean() for r in rows])
+    half = 0.5 * np.hypot(block * cell, block * cell)
+    cge, cgn = np.meshgrid(ce, cn)
+    dist, _ = tree.query(np.column_stack([cge.ravel(), cgn.ravel()]), k=1, distance_upper_bound=radius + half * 1.0001)
+    hit = np.isfinite(dist).reshape(len(rows), len(cols))
+    return np.repeat(np.repeat(hit, block, axis=0), block, axis=1)[:ny, :nx]
 
 
 def nearest_maps(chunks, boxes, node_e, node_n, tile_rows: tuple, tile_cols: tuple, radius: float) -> da.Array:

@@ -213,9 +213,12 @@ def test_close_sources_fitted_jointly(tmp_path):
     joint = run_stage(tmp_path, ds, picks).tables["dipoles"]
     assert (single["fit_r2"] < 0.95).all()  # the threshold joint_r2_below must be crossed for this test to mean anything
     assert (joint["joint_group"] == 0).all() and joint["note"].str.startswith("fitted jointly").all()
-    # 0.1 m and 5 %: the errors of two well-separated 3 A m^2 sources through 0.05 nT noise are ~1 cm
-    for (_, row), s in zip(joint.iterrows(), src):
-        assert np.hypot(row["easting_m"] - s[0], row["northing_m"] - s[1]) < 0.1
+    # 0.1 m and 5 %: the errors of two well-separated 3 A m^2 sources through 0.05 nT noise are ~1 cm (each true
+    # source against the nearest fitted one: the joint fit may hand a pick's number to its neighbour's source)
+    for s in src:
+        d = np.hypot(joint["easting_m"] - s[0], joint["northing_m"] - s[1])
+        row = joint.loc[d.idxmin()]
+        assert d.min() < 0.1
         assert abs(row["elevation_m"] - s[2]) < 0.1
         assert abs(row["moment_Am2"] - 3.0) / 3.0 < 0.05
     assert joint["fit_r2"].min() > 0.99
