@@ -319,6 +319,12 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
                           chunks=((len(names_out),),) + base.chunks)
     if stack.size * 4 <= PERSIST_BYTES:
         stack = stack.persist()
+    else:
+        # too large to hold: computed once into the stage's scratch folder and read back by tile, so that
+        # the coverage counts, the gap outlines and every written layer do not each recompute the detector sums
+        path = context.scratch / "maps.zarr"
+        stack.rechunk((len(names_out),) + tuple(max(c) for c in base.chunks)).to_zarr(str(path), overwrite=True)
+        stack = da.from_zarr(str(path))
 
     attrs_common = {"grid_mapping": "crs"}
     data_vars = {}
