@@ -24,7 +24,11 @@ NODATA = -99999.0
 
 
 def write_geotiff(grid: xr.Dataset, name: str, path: Path) -> Path:
-    """Write grid variable ``name`` to a single-band GeoTIFF at ``path``."""
+    """Write grid variable ``name`` to a single-band GeoTIFF at ``path``, strip by strip of its row chunks.
+
+    Strips without a valid cell are not written: GDAL leaves their blocks
+    empty (``SPARSE_OK``) and they read back as nodata.
+    """
     import rasterio
     from rasterio.crs import CRS
     from rasterio.transform import Affine
@@ -41,7 +45,7 @@ def write_geotiff(grid: xr.Dataset, name: str, path: Path) -> Path:
     profile = dict(
         driver="GTiff", width=nx, height=ny, count=1, dtype="float32",
         crs=CRS.from_wkt(grid.attrs["crs_wkt"]), transform=transform, nodata=NODATA,
-        tiled=True, blockxsize=256, blockysize=256, compress="deflate",
+        tiled=True, blockxsize=256, blockysize=256, compress="deflate", sparse_ok=True,
     )
     with rasterio.open(path, "w", **profile) as dst:
         dst.update_tags(1, units=var.attrs.get("units", ""), long_name=var.attrs.get("long_name", name))
@@ -49,6 +53,8 @@ def write_geotiff(grid: xr.Dataset, name: str, path: Path) -> Path:
         for j0 in range(0, ny, step):
             j1 = min(ny, j0 + step)
             block = np.asarray(data[j0:j1], dtype=np.float64)
+            if not np.isfinite(block).any():
+                continue  # a blank strip: its blocks stay unwritten and read back as nodata (sparse_ok)
             block = np.where(np.isfinite(block), block, NODATA).astype(np.float32)[::-1]
             dst.write(block, 1, window=Window(0, ny - j1, nx, j1 - j0))
     return path
