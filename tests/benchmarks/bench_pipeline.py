@@ -2,7 +2,7 @@
 
 Run from the repository root with the project's environment active::
 
-    python tests/benchmarks/bench_pipeline.py --readings 1e6 [--profile] [--byhand] [--kernels]
+    python tests/benchmarks/bench_pipeline.py --readings 1e6 [--profile] [--byhand] [--kernels] [--cluster 2]
 
 What it does
     1. Generates a survey of about ``--readings`` readings with the demo
@@ -23,7 +23,10 @@ What it does
        (``_bench_byhand.py``) on the same survey in its own process and
        scores both target tables against the truth table
        (``tests/_scoring.py``).
-    5. With ``--kernels``, runs the kernel measurements of
+    5. With ``--cluster N``, runs the whole pipeline again on a dask
+       ``LocalCluster`` of N worker processes (``_bench_cluster.py``) and
+       compares its tables with the threaded run's, byte for byte.
+    6. With ``--kernels``, runs the kernel measurements of
        ``_bench_kernels.py`` (memory bandwidth, gridding throughput and
        accuracy, lattice against direct model, FFT filters against
        harmonica).
@@ -232,6 +235,9 @@ def main(argv=None) -> int:
     parser.add_argument("--profile", action="store_true", help="profile every stage (cProfile, synchronous scheduler)")
     parser.add_argument("--byhand", action="store_true", help="run the by-hand comparison on the same survey")
     parser.add_argument("--kernels", action="store_true", help="run the kernel measurements")
+    parser.add_argument("--cluster", type=int, default=0, metavar="WORKERS",
+                        help="also run the whole pipeline on a dask LocalCluster of this many worker processes and "
+                             "compare its tables with the threaded run's")
     parser.add_argument("--reuse-byhand", action="store_true", help="take the by-hand figures of its last run on this survey")
     parser.add_argument("--keep-run", action="store_true", help="reuse an existing run folder (only stale stages run)")
     parser.add_argument("--skip-stages", action="store_true", help="do not run the pipeline (kernels or by-hand only)")
@@ -266,6 +272,11 @@ def main(argv=None) -> int:
         from _bench_compare import compare
 
         result["byhand"] = compare(toml, log, reuse=args.reuse_byhand)
+        out_json.write_text(json.dumps(result, indent=1) + "\n")
+    if args.cluster:
+        from _bench_cluster import cluster_run
+
+        result["cluster"] = cluster_run(toml, log, run_child, lodeline, args.cluster)
         out_json.write_text(json.dumps(result, indent=1) + "\n")
     if args.kernels:
         from _bench_kernels import all_kernels
