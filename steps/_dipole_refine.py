@@ -39,6 +39,30 @@ Added sources
     tail of a source outside) and gets no row. At most two failed seeds
     end the search; at most ``max_joint`` sources share a window.
 
+Sources found in the residual
+    The picking sees two anomalies a few metres apart as one when the
+    weaker lies on the stronger's flank (no separate maximum of the
+    detector), and a fit window of ``radius_m`` about the pick holds only
+    part of the weaker one. With ``residual_sources``, the fields of all
+    usable fitted sources (within 30 m of each) are removed from the loaded
+    readings (out to twice the radius of each pick); the residual averaged
+    over 0.4 m, less its median within ``radius_m``, is searched, largest
+    first, at readings farther than ``radius_m`` - 1.5 m from every window
+    centre, farther than half the radius from every fitted source and
+    outside the feature buffer, for values above
+    ``residual_noise_multiple`` times the noise. Each such seed (at least
+    ``radius_m`` from the previous seeds) gets a single-dipole fit on the
+    readings within ``radius_m`` of it, with the neighbours' fields
+    removed. It is kept when the fit is inside its box, reaches
+    ``accept_r2``, does not run back to within half a radius of a fitted
+    source (that would be the misfit of that source), is not a cancelling
+    source, and the F test prefers it to the background alone. Such
+    sources get new pick numbers and the note "found in the residual of
+    the fitted sources". On the demo survey this finds a 2.3 nT item 4 m
+    beside a 4.5 nT one (its pick's window held only the near flank) and
+    adds no false alarm; 10 x the noise is a choice made there (common
+    practice, no published source).
+
 The noise is the residual noise the picking stage measured (its
 ``picking_metadata``), or, where that is missing, 1.4826 times the median
 absolute deviation of second differences of consecutive readings along
@@ -70,7 +94,7 @@ from scipy.stats import f as f_dist
 
 from ._dipole_model import design
 from ._dipole_rows import fit_group
-from ._dipole_solve import BACKGROUND_TERMS, correlation_factor
+from ._dipole_solve import BACKGROUND_TERMS, background_columns, correlation_factor
 
 __all__ = ["better", "noise_from_readings", "refine"]
 
@@ -80,6 +104,8 @@ _SMOOTH_M = 0.4
 _CANCEL = 1.2
 # an added source this near the edge of its window is a nuisance term (the tail of a source outside), m
 _EDGE_M = 1.5
+# fields of fitted sources are removed from the readings within this distance when the residual is searched, m
+_TAIL_M = 30.0
 
 
 def better(one, joint, extra_sources: int, settings: dict, inflation: float = 1.0) -> bool:
@@ -366,12 +392,90 @@ def refine(rows, obs_all, values, f_hat, settings, noise_nT: float, domain: np.n
         (sources added), ``seeds_tried``.
     """
     if not (np.isfinite(noise_nT) and noise_nT > 0) or len(obs_all) == 0:
-        return {"refitted": 0, "added": 0, "seeds_tried": 0, "nuisance": 0}
+        return {"refitted": 0, "added": 0, "seeds_tried": 0, "nuisance": 0, "residual": 0}
     quick = dict(settings, start_depths_m=[float(np.median(settings["start_depths_m"]))])
     refitted = _neighbour_passes(rows, obs_all, values, f_hat, settings, noise_nT, quick)
     state = {"added": 0, "tried": 0, "nuisance": 0, "next_pick_id": next_pick_id, "next_group": next_group}
-    if settings["add_sources"] and settings["max_joint"] >= 2 and len(obs_all):
-        tree = cKDTree(obs_all[:, :2])
+    tree = cKDTree(obs_all[:, :2])
+    if settings["add_sources"] and settings["max_joint"] >= 2:
         for members in sorted(_groups(rows), key=lambda g: -_strength(rows, g)):
             _grow(rows, members, obs_all, values, f_hat, settings, noise_nT, domain, tree, quick, state)
-    return {"refitted": refitted, "added": state["added"], "seeds_tried": state["tried"], "nuisance": state["nuisance"]}
+    state["residual"] = 0
+    if settings["residual_sources"]:
+        _residual_sources(rows, obs_all, values, f_hat, settings, noise_nT, domain, tree, quick, state)
+    return {"refitted": refitted, "added": state["added"], "seeds_tried": state["tried"], "nuisance": state["nuisance"],
+            "residual": state["residual"]}
+
+
+def _residual_sources(rows, obs_all, values, f_hat, settings, noise_nT, domain, tree, quick, state) -> int:
+    """Sources found in the residual of all fitted sources outside every fit window (see the module docstring)."""
+    radius = settings["radius_m"]
+    pos, mom, _ = _sources(rows, settings)
+    residual = np.array(values, dtype=float)
+    for p, m in zip(pos, mom):
+        near = np.array(tree.query_ball_point(p[:2], _TAIL_M), dtype=np.int64)
+        if near.size:
+            residual[near] -= design(obs_all[near], p[None], f_hat) @ m
+    # the background of each reading's surroundings: the median within radius_m, on a 1 m lattice of centres
+    centres = np.array([r["_centre"] for r in rows if "_centre" in r], float).reshape(-1, 2)
+    fitted = np.array([[r["easting_m"], r["northing_m"]] for r in rows if np.isfinite(r.get("easting_m", np.nan))],
+                      float).reshape(-1, 2)
+    outside = domain.copy()
+    if len(centres):
+        outside &= cKDTree(centres).query(obs_all[:, :2], distance_upper_bound=radius - _EDGE_M)[0] == np.inf
+    if len(fitted):
+        outside &= cKDTree(fitted).query(obs_all[:, :2], distance_upper_bound=0.5 * radius)[0] == np.inf
+    where = np.flatnonzero(outside)
+    if not where.size:
+        return 0
+    near = tree.query_ball_point(obs_all[where, :2], _SMOOTH_M)
+    smooth = np.array([residual[n].mean() for n in near])
+    back = np.array([np.median(residual[n]) for n in tree.query_ball_point(obs_all[where, :2], radius)])
+    excess = np.abs(smooth - back)
+    order = np.argsort(-excess)
+    order = order[excess[order] > settings["residual_noise_multiple"] * noise_nT]
+    taken: list[np.ndarray] = []
+    found = 0
+    for i in order:
+        seed = obs_all[where[i], :2]
+        if taken and np.min(np.hypot(*(np.array(taken) - seed).T)) < radius:
+            continue
+        taken.append(seed.copy())
+        state["tried"] += 1
+        idx = np.array(tree.query_ball_point(seed, radius), dtype=np.int64)
+        if idx.size < settings["min_readings"]:
+            continue
+        obs = obs_all[idx]
+        val = values[idx] - _neighbour_field(obs, rows, [], f_hat, settings, seed[None])
+        fit, (row,) = fit_group(obs, val, f_hat, seed[None], [None], settings)
+        empty = _background_only(obs, val, settings["background"])
+        # a fit that runs back to within half a radius of a fitted source is that source's misfit, not a new one
+        again = len(fitted) and np.min(np.hypot(*(fitted - fit.positions[0, :2]).T)) < 0.5 * radius
+        if (again or fit.at_bound or fit.r2 < settings["accept_r2"] or _cancelling(obs, fit, f_hat, _size(val), 0)
+                or not better(empty, fit, 1, settings, correlation_factor(obs, fit.residuals))):
+            continue
+        state["next_pick_id"] += 1
+        close = len(fitted) and np.min(np.hypot(*(fitted - fit.positions[0, :2]).T)) < 2 * radius
+        row.update(pick_id=state["next_pick_id"], kind="cluster" if close else "point", joint_group=-1,
+                   main_field_nT=rows[0].get("main_field_nT", np.nan) if rows else np.nan,
+                   note="found in the residual of the fitted sources", _at_bound=False, _centre=seed.copy(), _window=idx)
+        rows.append(row)
+        fitted = np.vstack([fitted, fit.positions[:, :2]])
+        found += 1
+    state["residual"] = found
+    return found
+
+
+class _Empty:
+    """A background-only fit, in the shape :func:`better` reads (``n``, ``rms_nT``)."""
+
+    def __init__(self, n: int, rms_nT: float):
+        self.n, self.rms_nT = n, rms_nT
+        self.positions = np.zeros((0, 3))
+
+
+def _background_only(obs, values, kind) -> _Empty:
+    a = background_columns(obs, kind)
+    coef, *_ = np.linalg.lstsq(a, values, rcond=None)
+    res = values - a @ coef
+    return _Empty(len(values), float(np.sqrt(np.mean(res**2))))

@@ -42,7 +42,13 @@ Neighbours and added sources
     remaining residual, each kept when the F test prefers it: close
     objects that the picking saw as one. Added sources get new pick
     numbers, kind ``cluster`` and the note "sources added where the fit
-    left signal".
+    left signal". Last (``residual_sources``), the residual of all fitted
+    sources outside every fit window is searched for anomalies above
+    ``residual_noise_multiple`` times the noise that no pick found (a weaker
+    item on a stronger one's flank); each that passes the checks gets a
+    new pick number, kind ``point`` (``cluster`` within twice the radius
+    of a fitted source) and the note "found in the residual of the fitted
+    sources".
 
 Outputs
     ``tables["dipoles"]``: one row per pick (columns in
@@ -118,6 +124,10 @@ PARAMS = (
     Param("add_fraction", 0.01, "A fit is given another source only while its residual RMS exceeds this fraction of its largest anomaly (the misfit of a strong source through position errors is about 1 % of its peak on the demo).",
           minimum=0, maximum=1),
     Param("add_min_separation_m", 1.0, "Closest an added source may lie to another source, m.", minimum=0),
+    Param("residual_sources", True, "Search the residual of all fitted sources outside the fit windows for sources no pick found "
+          "(beside a stronger anomaly that the picking took in), and fit those that pass the checks.", kind=bool),
+    Param("residual_noise_multiple", 10.0, "A residual (averaged over 0.4 m, less the median within radius_m) above this multiple "
+          "of the noise seeds a source found in the residual.", minimum=1),
     Param("feature_buffer_m", 3.0, "No source is added within this distance of a linear or extended feature, m.", minimum=0),
     Param("noise_nT", 0.0, "Noise standard deviation of the readings, nT; 0 takes the residual noise measured by the picking stage.",
           minimum=0),
@@ -252,6 +262,7 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
         "sources_added": refined["added"],
         "seeds_tried": refined["seeds_tried"],
         "nuisance_dipoles": refined["nuisance"],
+        "residual_sources": refined.get("residual", 0),
         "noise_nT": noise_nT,
         "noise_source": noise_source,
         "median_r2": float(np.nanmedian(table["fit_r2"])) if np.isfinite(table["fit_r2"]).any() else float("nan"),
@@ -261,7 +272,7 @@ def run(data: dict, params: dict, context: StageContext) -> StageResult:
     }
     context.log.info("dipole_fit: %(fitted)d of %(picks)d picks fitted, %(ok)d ok, %(joint_groups)d joint groups, "
                      "%(refitted_without_neighbours)d windows refitted with neighbours removed, %(sources_added)d sources "
-                     "added (noise %(noise_nT).3g nT, %(noise_source)s), median R^2 %(median_r2).3f; %(readings_loaded)d "
+                     "added, %(residual_sources)d found in the residual (noise %(noise_nT).3g nT, %(noise_source)s), median R^2 %(median_r2).3f; %(readings_loaded)d "
                      "readings loaded from %(chunks_read)d of %(chunks_total)d chunks", summary)
     return StageResult(tables={"dipoles": table}, summary=summary)
 

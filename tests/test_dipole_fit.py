@@ -263,7 +263,7 @@ def test_three_close_sources_resolved_from_one_pick(tmp_path):
 
 
 def test_isolated_dipole_gets_no_added_source(tmp_path):
-    # one dipole in white noise: the fit leaves nothing but noise, so nothing may be added (20 noise draws)
+    # one dipole in white noise: the fit leaves nothing but noise, so nothing may be added, by the added-source\n    # step or the search of the residual (20 noise draws)
     added = 0
     for seed in range(20):
         ds, _ = make_readings([[30.0, 10.0, -12.8]], [induced(2.0)], noise=0.05, seed=seed)
@@ -286,6 +286,26 @@ def test_neighbour_tail_removed_before_fitting_a_weak_source(tmp_path):
     # source's own 1-sigma error through 0.05 nT noise is about 0.05 m)
     assert err(off) > 2 * err(on) and err(on) < 0.2
     assert abs(on.loc[2, "moment_Am2"] - 0.3) / 0.3 < 0.2
+
+
+def test_source_beside_a_pick_found_in_the_residual(tmp_path):
+    # a 0.5 A m^2 source (peak ~4.5 nT) 6.5 m from a 3 A m^2 one that has the only pick: it lies outside the pick's
+    # 5 m window, so only the search of the residual of the fitted sources can find it (added sources are off here
+    # so that the window-edge widening cannot find it first)
+    src = np.array([[25.0, 10.0, -13.0], [31.5, 10.0, -12.8]])
+    ds, _ = make_readings(src, [induced(3.0), induced(0.5)], noise=0.05)
+    picks = picks_table([[1, 25.0, 10.0, "point", 1, 1]])
+    off = run_stage(tmp_path / "off", ds, picks, add_sources=False, residual_sources=False).tables["dipoles"]
+    assert len(off) == 1  # without the search the second source is missed: the test means something
+    on = run_stage(tmp_path / "on", ds, picks, add_sources=False).tables["dipoles"]
+    assert len(on) == 2
+    new = on.iloc[1]
+    assert new["note"] == "found in the residual of the fitted sources" and new["ok"]
+    # 0.2 m, 0.2 m and 20 %: the weak source's 1-sigma errors through 0.05 nT noise are about 0.02 m and 2 %, and
+    # the strong source's misfit outside its window biases it a little
+    assert np.hypot(new["easting_m"] - 31.5, new["northing_m"] - 10.0) < 0.2
+    assert abs(new["elevation_m"] + 12.8) < 0.2
+    assert abs(new["moment_Am2"] - 0.5) / 0.5 < 0.2
 
 
 def test_noise_from_second_differences():

@@ -10,6 +10,8 @@ import sys
 from pathlib import Path
 
 READING_STAGES = ("ingest", "spikes", "positions", "diurnal", "main_field", "heading", "levelling")
+#: Stages whose throughput is counted in picks per second (the picking stage's candidates).
+TARGET_STAGES = ("euler", "dipole_fit", "sizing", "ranking", "reacquisition", "report")
 
 
 def _f(x, digits=1):
@@ -38,15 +40,18 @@ def stage_table(r: dict) -> str:
     for name, s in r["stages"].items():
         if name.startswith("_") or s.get("wall_s") is None:
             continue
+        picks = (r["stages"].get("picking", {}).get("summary") or {}).get("candidates")
         if name in READING_STAGES:
             thr = f"{readings / s['wall_s'] / 1e6:.2f} M readings/s" if s["wall_s"] else "-"
+        elif name in TARGET_STAGES:
+            thr = f"{picks / s['wall_s']:,.0f} picks/s" if picks and s["wall_s"] else "-"
         else:
             cells = (r["stages"].get("gridding", {}).get("summary") or {}).get("cells")
             thr = f"{cells / s['wall_s'] / 1e6:.1f} M cells/s" if cells and s["wall_s"] else "-"
         rows.append(f"| {name} | {_f(s['wall_s'])} | {_f(s['cpu_s'])} | {thr} | {_f(s['peak_rss_MB'], 0)} | {_f(s['process_wall_s'])} |")
     e = r["end_to_end"]
     start = r["stages"].get("_startup", {})
-    rows.append(f"| **all stages** | **{_f(e['wall_s'])}** | | {readings / e['wall_s'] / 1e6:.2f} M readings/s | **{_f(e['peak_rss_MB'], 0)}** | {_f(e['process_wall_s'])} |")
+    rows.append(f"| **all stages** | **{_f(e['wall_s'])}** | | {readings / e['wall_s'] / 1e3:.1f} k readings/s | **{_f(e['peak_rss_MB'], 0)}** | {_f(e['process_wall_s'])} |")
     if start:
         rows.append(f"| (start-up of one `lodeline run`, all fresh) | | | | {_f(start.get('peak_rss_MB'), 0)} | {_f(start.get('process_wall_s'))} |")
     return "\n".join(rows)
