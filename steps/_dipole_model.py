@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["MU0", "field_unit_vector", "design", "moment_angles"]
+__all__ = ["MU0", "field_unit_vector", "design", "source_gradient", "moment_angles"]
 
 #: Permeability of free space, T m / A (exact enough: 4 pi 1e-7).
 MU0 = 4e-7 * np.pi
@@ -69,6 +69,47 @@ def design(obs: np.ndarray, sources: np.ndarray, f_hat: np.ndarray) -> np.ndarra
         fr = r @ f_hat
         # f . B for unit moment along axis c: (3 (f.r) r_c / r^2 - f_c) / r^3
         cols.append(_K_NT * (3.0 * (fr / dist2)[:, None] * r - f_hat[None, :]) * inv3[:, None])
+    return np.concatenate(cols, axis=1)
+
+
+def source_gradient(obs: np.ndarray, sources: np.ndarray, moments: np.ndarray, f_hat: np.ndarray) -> np.ndarray:
+    """Derivatives of each dipole's total-field anomaly with respect to its own position.
+
+    With ``r`` from the source to the reading, the anomaly is
+    ``T = K (3 (f.r)(m.r) / r^5 - (f.m) / r^3)`` (``K = mu0 / 4 pi``), and
+    differentiating by the reading position gives
+    ``grad T = K (3 (f (m.r) + m (f.r)) / r^5 + 3 (f.m) r / r^5 - 15 (f.r)(m.r) r / r^7)``;
+    moving the source instead changes ``r`` the other way, so the result is
+    ``-grad T``.
+
+    Parameters
+    ----------
+    obs : ndarray, shape (n, 3)
+        Reading positions (east, north, up), m.
+    sources : ndarray, shape (k, 3)
+        Dipole positions, m.
+    moments : ndarray, shape (k, 3)
+        Dipole moments, A m^2.
+    f_hat : ndarray, shape (3,)
+        Main-field unit vector.
+
+    Returns
+    -------
+    ndarray, shape (n, 3 k)
+        nT per m: column ``3 j + c`` is the derivative of dipole ``j``'s
+        anomaly with respect to its coordinate ``c`` (east, north, up).
+    """
+    sources = np.atleast_2d(sources)
+    moments = np.atleast_2d(moments)
+    cols = []
+    for s, m in zip(sources, moments):
+        r = obs - s
+        dist2 = np.einsum("ij,ij->i", r, r)
+        inv5 = dist2 ** -2.5
+        fr, mr, fm = r @ f_hat, r @ m, float(f_hat @ m)
+        grad = (3.0 * (f_hat[None, :] * mr[:, None] + m[None, :] * fr[:, None] + fm * r)
+                - 15.0 * (fr * mr / dist2)[:, None] * r) * inv5[:, None]
+        cols.append(-_K_NT * grad)
     return np.concatenate(cols, axis=1)
 
 

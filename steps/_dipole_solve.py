@@ -15,9 +15,10 @@ Uncertainties are those of the linearised full problem: with ``J`` the
 Jacobian of the model with respect to every parameter (positions, moments,
 background) at the solution and ``s^2 = RSS / (n - p)`` the residual
 variance, the covariance is ``s^2 (J^T J)^-1`` (Press et al. 2007, ch.
-15.5). The Jacobian's position columns are central differences of the
-model (step 1 mm); the moment and background columns are exact (the model
-is linear in them). The moment magnitude's standard error is propagated
+15.5). The Jacobian's position columns are the closed-form derivatives
+of the dipole anomaly with respect to the source position
+(:func:`lodeline.steps._dipole_model.source_gradient`); the moment and
+background columns are exact (the model is linear in them). The moment magnitude's standard error is propagated
 from the moments' covariance through ``m / |m|``.
 
 References
@@ -41,11 +42,15 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.optimize import least_squares
 
-from ._dipole_model import design
+from ._dipole_model import design, source_gradient
 
 __all__ = ["BACKGROUND_TERMS", "DipoleFit", "background_columns", "correlation_factor", "fit_dipoles"]
 
-_STEP_M = 1e-3
+# relative step tolerance of the search about the readings' centroid: 1e-4 of a few metres is a fraction of a
+# millimetre, far below any position error of a fit (1 cm and more)
+_XTOL = 1e-4
+_FTOL = 1e-10
+
 
 
 @dataclass
@@ -168,38 +173,46 @@ def fit_dipoles(
     """
     back = background_columns(obs, background)
     k = lower.shape[0]
-    lo, hi = lower.ravel(), upper.ravel()
+    # the search runs about the readings' centroid: map coordinates (1e5-1e7 m) would make the optimiser's
+    # relative step tolerance a fraction of a metre
+    origin = obs.mean(axis=0)
+    full = obs
+    obs = obs - origin
+    shift = np.tile(origin, k)
+    lo, hi = lower.ravel() - shift, upper.ravel() - shift
+
+    last: dict = {}
+
+    def linear(p):
+        # the optimiser asks for the residual and then the Jacobian at the same point: solve once
+        key = p.tobytes()
+        if last.get("key") != key:
+            last["key"], last["value"] = key, _linear(obs, values, p.reshape(k, 3), f_hat, back)
+        return last["value"]
 
     def residual(p):
-        a, coef = _linear(obs, values, p.reshape(k, 3), f_hat, back)
+        a, coef = linear(p)
         return a @ coef - values
 
     def jacobian(p):
         # Kaufman's (1975) approximation to the variable-projection Jacobian: d r / d p_i = P (d A / d p_i) c,
-        # with P the projector on the complement of A's columns; d A / d p_i by central differences of the
-        # three design columns of the source that p_i belongs to
-        pos = p.reshape(k, 3)
-        a, coef = _linear(obs, values, pos, f_hat, back)
+        # with P the projector on the complement of A's columns; (d A / d p_i) c is the derivative of the
+        # source's anomaly with respect to its position, in closed form (source_gradient)
+        a, coef = linear(p)
         q, _ = np.linalg.qr(a)
-        out = np.empty((obs.shape[0], 3 * k))
-        for i in range(3 * k):
-            j, c = divmod(i, 3)
-            step = np.zeros(3)
-            step[c] = _STEP_M
-            plus = design(obs, (pos[j] + step)[None], f_hat)
-            minus = design(obs, (pos[j] - step)[None], f_hat)
-            v = (plus - minus) @ coef[3 * j : 3 * j + 3] / (2 * _STEP_M)
-            out[:, i] = v - q @ (q.T @ v)
-        return out
+        v = source_gradient(obs, p.reshape(k, 3), coef[: 3 * k].reshape(k, 3), f_hat)
+        return v - q @ (q.T @ v)
 
     best = None
     for start in starts:
-        x0 = np.clip(np.asarray(start, float).ravel(), lo + 1e-6, hi - 1e-6)
-        sol = least_squares(residual, x0, jac=jacobian, bounds=(lo, hi), method="trf", x_scale=1.0, xtol=1e-10,
-                            ftol=1e-10, max_nfev=400)
+        x0 = np.clip(np.asarray(start, float).ravel() - shift, lo + 1e-6, hi - 1e-6)
+        sol = least_squares(residual, x0, jac=jacobian, bounds=(lo, hi), method="trf", x_scale=1.0, xtol=_XTOL,
+                            ftol=_FTOL, max_nfev=400)
         if best is None or sol.cost < best.cost:
             best = sol
     pos = best.x.reshape(k, 3)
+    pos = pos + origin
+    obs = full
     a, coef = _linear(obs, values, pos, f_hat, back)
     moments = coef[: 3 * k].reshape(k, 3)
     res = a @ coef - values
@@ -207,16 +220,8 @@ def fit_dipoles(
     n_par = 3 * k + a.shape[1]
     rss = float(res @ res)
     tss = float(np.sum((values - values.mean()) ** 2))
-    # full Jacobian: position columns by central differences, the rest exact
-    jac_pos = np.empty((n, 3 * k))
-    flat = pos.ravel()
-    for i in range(3 * k):
-        step = np.zeros(3 * k)
-        step[i] = _STEP_M
-        plus = design(obs, (flat + step).reshape(k, 3), f_hat) @ coef[: 3 * k]
-        minus = design(obs, (flat - step).reshape(k, 3), f_hat) @ coef[: 3 * k]
-        jac_pos[:, i] = (plus - minus) / (2 * _STEP_M)
-    jac = np.hstack([jac_pos, a])
+    # full Jacobian: position columns in closed form, the rest exact (the model is linear in them)
+    jac = np.hstack([source_gradient(obs, pos, moments, f_hat), a])
     s2 = rss / max(n - n_par, 1) * correlation_factor(obs, res)
     cov = s2 * np.linalg.pinv(jac.T @ jac)
     pcov = np.stack([cov[3 * j : 3 * j + 3, 3 * j : 3 * j + 3] for j in range(k)])

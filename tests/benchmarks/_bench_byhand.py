@@ -159,8 +159,8 @@ def main(data: Path, out: Path) -> dict:
             continue
         euler = hm.EulerDeconvolution(structural_index=3)
         try:
-            euler.fit((ee[sl][ok], nn[sl][ok], np.full(ok.sum(), elev)), r[sl][ok],
-                      (d_e[sl][ok], d_n[sl][ok], d_up[sl][ok]))
+            euler.fit((ee[sl][ok], nn[sl][ok], np.full(ok.sum(), elev)),
+                      (r[sl][ok], d_e[sl][ok], d_n[sl][ok], d_up[sl][ok]))
         except np.linalg.LinAlgError:
             continue
         x, y, z = euler.location_
