@@ -416,7 +416,6 @@ def _residual_sources(rows, obs_all, values, f_hat, settings, noise_nT, domain, 
         near = np.array(tree.query_ball_point(p[:2], _TAIL_M), dtype=np.int64)
         if near.size:
             residual[near] -= design(obs_all[near], p[None], f_hat) @ m
-    # the background of each reading's surroundings: the median within radius_m, on a 1 m lattice of centres
     centres = np.array([r["_centre"] for r in rows if "_centre" in r], float).reshape(-1, 2)
     fitted = np.array([[r["easting_m"], r["northing_m"]] for r in rows if np.isfinite(r.get("easting_m", np.nan))],
                       float).reshape(-1, 2)
@@ -428,9 +427,8 @@ def _residual_sources(rows, obs_all, values, f_hat, settings, noise_nT, domain, 
     where = np.flatnonzero(outside)
     if not where.size:
         return 0
-    near = tree.query_ball_point(obs_all[where, :2], _SMOOTH_M)
-    smooth = np.array([residual[n].mean() for n in near])
-    back = np.array([np.median(residual[n]) for n in tree.query_ball_point(obs_all[where, :2], radius)])
+    smooth = _reduce_near(tree, obs_all[where, :2], _SMOOTH_M, residual, np.mean)
+    back = _reduce_near(tree, obs_all[where, :2], radius, residual, np.median)
     excess = np.abs(smooth - back)
     order = np.argsort(-excess)
     order = order[excess[order] > settings["residual_noise_multiple"] * noise_nT]
@@ -464,6 +462,16 @@ def _residual_sources(rows, obs_all, values, f_hat, settings, noise_nT, domain, 
         found += 1
     state["residual"] = found
     return found
+
+
+def _reduce_near(tree, points: np.ndarray, radius: float, values: np.ndarray, reduce, batch: int = 2048) -> np.ndarray:
+    """``reduce`` of ``values`` over the readings within ``radius`` of each point, a batch of points at a time
+    (the neighbour lists of one batch only are held)."""
+    out = np.empty(len(points))
+    for start in range(0, len(points), batch):
+        lists = tree.query_ball_point(points[start : start + batch], radius)
+        out[start : start + len(lists)] = [reduce(values[n]) if len(n) else np.nan for n in lists]
+    return out
 
 
 class _Empty:

@@ -194,28 +194,29 @@ def fft_filters(size: int = 4096) -> dict:
         np.sqrt(up**2 + de**2 + dn**2)
         np.arctan2(up, np.hypot(de, dn))
     del up, de, dn
+    pad = next(p.default for p in enh.PARAMS if p.name == "pad_fraction")  # the stage's default
     residual = da.from_array(values, chunks=(512, 512))
     with dask.config.set(scheduler="threads"):
-        warm = enh.enhance(residual[:1024, :1024].rechunk(512), (0.25, 0.25), fft.PRODUCTS, 64, 0.25, 1.0, field, 20.0, 16)
+        warm = enh.enhance(residual[:1024, :1024].rechunk(512), (0.25, 0.25), fft.PRODUCTS, 64, pad, 1.0, field, 20.0, 16)
         warm.compute()
         with Timer() as tl:
-            stack = enh.enhance(residual, (0.25, 0.25), fft.PRODUCTS, 64, 0.25, 1.0, field, 20.0, 16)
+            stack = enh.enhance(residual, (0.25, 0.25), fft.PRODUCTS, 64, pad, 1.0, field, 20.0, 16)
             target = np.empty(stack.shape)
             da.store(stack, target, lock=False)
     # Temporaries of one tile with its halo (640 x 640), NaN blanks in it.
     tile = values[:640, :640].copy()
     tile[300:340, 100:500] = np.nan
-    fft.filter_tile(tile, fft.PRODUCTS, (0.25, 0.25), 0.25, 1.0, field, None, 20.0, 16)
+    fft.filter_tile(tile, fft.PRODUCTS, (0.25, 0.25), pad, 1.0, field, None, 20.0, 16)
     tracemalloc.start()
     tracemalloc.reset_peak()
     base = tracemalloc.get_traced_memory()[0]
-    out = fft.filter_tile(tile, fft.PRODUCTS, (0.25, 0.25), 0.25, 1.0, field, None, 20.0, 16)
+    out = fft.filter_tile(tile, fft.PRODUCTS, (0.25, 0.25), pad, 1.0, field, None, 20.0, 16)
     peak = tracemalloc.get_traced_memory()[1] - base
     tracemalloc.stop()
     padded = 1
     for n in tile.shape:
         import scipy.fft
-        padded *= scipy.fft.next_fast_len(n + 2 * max(8, int(np.ceil(0.25 * n))), real=True)
+        padded *= scipy.fft.next_fast_len(n + 2 * max(8, int(np.ceil(pad * n))), real=True)
     temporaries = peak - out.nbytes
     cells = size * size
     return {"grid_cells": cells, "harmonica_wall_s": round(th.wall, 2), "harmonica_cpu_s": round(th.cpu, 2),
@@ -224,7 +225,7 @@ def fft_filters(size: int = 4096) -> dict:
             "throughput_ratio": round(th.wall / tl.wall, 2), "cpu_ratio": round(th.cpu / tl.cpu, 2),
             "tile_temporaries_MB": round(temporaries / 1e6, 1),
             "temporaries_over_tile_with_halo": round(temporaries / tile.nbytes, 2),
-            "temporaries_over_padded_tile": round(temporaries / (padded * 8), 2)}
+            "temporaries_over_padded_tile": round(temporaries / (padded * 8), 2), "pad_fraction": pad}
 
 
 def all_kernels(toml: Path, stages: dict | None = None) -> dict:
