@@ -52,7 +52,6 @@ _XTOL = 1e-4
 _FTOL = 1e-10
 
 
-
 @dataclass
 class DipoleFit:
     """Result of a fit of ``k`` dipoles.
@@ -210,8 +209,7 @@ def fit_dipoles(
                             ftol=_FTOL, max_nfev=400)
         if best is None or sol.cost < best.cost:
             best = sol
-    pos = best.x.reshape(k, 3)
-    pos = pos + origin
+    pos = best.x.reshape(k, 3) + origin
     obs = full
     a, coef = _linear(obs, values, pos, f_hat, back)
     moments = coef[: 3 * k].reshape(k, 3)
